@@ -1,0 +1,130 @@
+"""Array backend: numpy + scipy.fft on the CPU, CuPy + cupyx.scipy.fft on the GPU.
+
+This is the one place that picks the compute device and the FFT thread count. CuPy is
+imported only here and only when the GPU is asked for, so volrecon runs without it.
+"""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass
+from types import ModuleType
+from typing import Any
+
+import numpy as np
+import scipy.fft
+
+from volrecon.errors import BackendError, ConfigError
+
+__all__ = ["Backend", "available_cores", "get_backend", "split_threads"]
+
+DEVICES = ("cpu", "gpu")
+
+
+def available_cores() -> int:
+    """Number of CPU cores this process may run on (respects affinity masks)."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # pragma: no cover - not on Linux
+        return max(1, os.cpu_count() or 1)
+
+
+def split_threads(workers: int, *, cores: int | None = None) -> int:
+    """FFT threads per worker so that ``workers * threads <= cores`` (at least 1)."""
+    if workers < 1:
+        raise ConfigError(f"workers must be at least 1; got {workers}")
+    cores = available_cores() if cores is None else cores
+    return max(1, cores // workers)
+
+
+@dataclass(frozen=True)
+class Backend:
+    """Array namespace, FFT module and thread count used by the solvers.
+
+    Attributes
+    ----------
+    device : {"cpu", "gpu"}
+        Where arrays live.
+    xp : module
+        ``numpy`` or ``cupy``.
+    threads : int
+        FFT worker threads (CPU only; ignored on the GPU).
+    """
+
+    device: str
+    xp: ModuleType
+    fft: ModuleType
+    threads: int
+
+    def rfft2(self, a: Any, shape_yx: tuple[int, int]) -> Any:
+        """Real 2-D FFT over the last two axes, zero-padding them to `shape_yx`."""
+        if self.device == "cpu":
+            return self.fft.rfft2(a, s=shape_yx, workers=self.threads)
+        return self.fft.rfft2(a, s=shape_yx)
+
+    def irfft2(self, a: Any, shape_yx: tuple[int, int]) -> Any:
+        """Inverse of :meth:`rfft2` on a grid of `shape_yx` (no cropping)."""
+        if self.device == "cpu":
+            return self.fft.irfft2(a, s=shape_yx, workers=self.threads)
+        return self.fft.irfft2(a, s=shape_yx)
+
+    def dct_z(self, a: Any, *, inverse: bool = False) -> Any:
+        """Orthonormal DCT-II (or its inverse) along axis -3, the depth axis."""
+        transform = self.fft.idct if inverse else self.fft.dct
+        if self.device == "cpu":
+            return transform(a, type=2, axis=-3, norm="ortho", workers=self.threads)
+        return transform(a, type=2, axis=-3, norm="ortho")
+
+    def asarray(self, a: Any, dtype: Any = None) -> Any:
+        """Move `a` onto this backend's device (no copy if already there)."""
+        return self.xp.asarray(a, dtype=dtype)
+
+    def to_numpy(self, a: Any) -> np.ndarray:
+        """Bring `a` back to host memory as a numpy array."""
+        if self.device == "cpu":
+            return np.asarray(a)
+        return self.xp.asnumpy(a)  # type: ignore[no-any-return]
+
+
+def _import_cupy() -> tuple[ModuleType, ModuleType]:
+    try:
+        import cupy
+        import cupyx.scipy.fft as cufft
+    except ImportError as exc:
+        raise BackendError(
+            "device='gpu' needs CuPy, which is not installed; install it with "
+            "pip install 'volrecon[gpu]' (CUDA 12) or use device='cpu'"
+        ) from exc
+    if not cupy.cuda.is_available():
+        raise BackendError(
+            "device='gpu' was asked for but CuPy finds no usable CUDA device or driver; "
+            "check nvidia-smi or use device='cpu'"
+        )
+    return cupy, cufft
+
+
+def get_backend(device: str = "cpu", *, threads: int | None = None) -> Backend:
+    """Return the backend for `device`.
+
+    Parameters
+    ----------
+    device : {"cpu", "gpu"}
+        ``"gpu"`` needs CuPy and a CUDA device.
+    threads : int, optional
+        FFT threads on the CPU. Default: every available core.
+
+    Raises
+    ------
+    ConfigError
+        If `device` is not one of ``"cpu"``, ``"gpu"`` or `threads` < 1.
+    BackendError
+        If the GPU is asked for but CuPy or a device is missing.
+    """
+    if device not in DEVICES:
+        raise ConfigError(f"device must be 'cpu' or 'gpu'; got {device!r}")
+    if threads is not None and threads < 1:
+        raise ConfigError(f"threads must be at least 1; got {threads}")
+    if device == "gpu":
+        cupy, cufft = _import_cupy()
+        return Backend("gpu", cupy, cufft, 1)
+    return Backend("cpu", np, scipy.fft, threads or available_cores())

@@ -1,0 +1,1 @@
+"""calibrate stage of volrecon."""

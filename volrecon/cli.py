@@ -1,0 +1,93 @@
+"""The ``volrecon`` command: a thin layer of argument parsing over the library.
+
+Each subcommand has one ``_add_<name>`` function that declares its arguments and one
+``_run_<name>`` function that calls library code. Errors volrecon raises on purpose print as
+one line on stderr with exit status 2; ``--debug`` shows the traceback instead.
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import sys
+import warnings
+from collections.abc import Callable, Sequence
+
+from volrecon.errors import VolreconError
+
+__all__ = ["main"]
+
+Runner = Callable[[argparse.Namespace], int]
+
+
+def _add_bench(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    p = sub.add_parser("bench", help="time the solvers against the FFT lower bound")
+    p.add_argument("--size", type=int, nargs=3, action="append", metavar=("Z", "Y", "X"),
+                   help="problem size (repeatable); default 16 128 128")
+    p.add_argument("--device", choices=("cpu", "gpu"), default="cpu")
+    p.add_argument("--threads", type=int, default=None, help="FFT threads (default: all cores)")
+    p.add_argument("--json", action="store_true", help="print the figures as JSON")
+    p.set_defaults(run=_run_bench)
+
+
+def _run_bench(args: argparse.Namespace) -> int:
+    from volrecon.bench import main as bench_main
+
+    argv = []
+    for size in args.size or []:
+        argv += ["--size", *map(str, size)]
+    argv += ["--device", args.device]
+    if args.threads:
+        argv += ["--threads", str(args.threads)]
+    if args.json:
+        argv.append("--json")
+    return bench_main(argv)
+
+
+_COMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [  # type: ignore[type-arg]
+    _add_bench,
+]
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser of the ``volrecon`` command."""
+    from volrecon import __version__
+
+    parser = argparse.ArgumentParser(
+        prog="volrecon",
+        description="Calibrate a single-shot 3-D microscope and reconstruct its video into "
+        "4-D OME-Zarr volumes. Reconstructions are research images, not for diagnosis.",
+    )
+    parser.add_argument("--version", action="version", version=f"volrecon {__version__}")
+    parser.add_argument("--debug", action="store_true", help="show tracebacks and debug logs")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    for add in _COMMANDS:
+        add(sub)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Entry point of the ``volrecon`` console script; returns the exit status."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    logging.basicConfig(level=logging.DEBUG if args.debug else logging.WARNING,
+                        format="%(levelname)s %(name)s: %(message)s")
+    if args.debug:
+        return int(args.run(args))
+    # Library warnings and log chatter (tifffile logs on truncated files) would bury the one
+    # line that tells the user what to do.
+    logging.getLogger("tifffile").setLevel(logging.CRITICAL)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            return int(args.run(args))
+    except VolreconError as exc:
+        print(f"volrecon {args.command}: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print(f"volrecon {args.command}: interrupted", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,7 @@
+"""PSF models: linear operators from a volume (Z, Y, X) to a sensor frame (Y, X)."""
+
+from volrecon.models.base import Geometry, PSFModel
+from volrecon.models.depth_convolution import DepthConvolutionPSF
+from volrecon.models.store import load_model, save_model
+
+__all__ = ["DepthConvolutionPSF", "Geometry", "PSFModel", "load_model", "save_model"]

@@ -1,0 +1,152 @@
+"""Save and load PSF models as zarr v3 groups (layout: ``schemas/psf-model.schema.json``).
+
+A model store is a directory holding a zarr group whose attribute ``volrecon_model`` names
+the model kind, the format version, the geometry and the kind's own attributes; each array
+the kind needs is a child array of the group. Writes go to a temporary sibling directory that
+is renamed into place, so a failed save never leaves a partial model behind.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import uuid
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from volrecon.errors import ModelStoreError
+from volrecon.models.base import Geometry, PSFModel
+
+__all__ = ["FORMAT_VERSION", "MODEL_ATTRIBUTE", "load_model", "model_kinds", "save_model"]
+
+FORMAT_VERSION = 1
+MODEL_ATTRIBUTE = "volrecon_model"
+
+
+def model_kinds() -> dict[str, type[PSFModel]]:
+    """Every model kind a store can hold, by its ``kind`` name."""
+    from volrecon.models.depth_convolution import DepthConvolutionPSF
+
+    kinds: dict[str, type[PSFModel]] = {DepthConvolutionPSF.kind: DepthConvolutionPSF}
+    for cls in _subclasses(PSFModel):
+        if getattr(cls, "kind", None):
+            kinds.setdefault(cls.kind, cls)
+    return kinds
+
+
+def _subclasses(cls: type) -> list[type]:
+    found = []
+    for sub in cls.__subclasses__():
+        found.append(sub)
+        found.extend(_subclasses(sub))
+    return found
+
+
+def save_model(model: PSFModel, path: str | os.PathLike[str]) -> None:
+    """Write `model` to a new zarr store at `path`, replacing an existing model store there."""
+    import zarr
+    from zarr.codecs import ZstdCodec
+
+    target = Path(path)
+    if target.exists() and not _is_model_store(target):
+        raise ModelStoreError(
+            f"{target}: exists and is not a volrecon model store; choose another output path"
+        )
+    target.parent.mkdir(parents=True, exist_ok=True)
+    tmp = target.with_name(f".{target.name}.{uuid.uuid4().hex}.partial")
+    g = model.geometry
+    attributes = {
+        "kind": model.kind,
+        "format_version": FORMAT_VERSION,
+        "shape_zyx": list(model.shape_in),
+        "dtype": model.dtype.name,
+        "depth_step_um": g.depth_step_um,
+        "pixel_size_um": g.pixel_size_um,
+        "depth_start_um": g.depth_start_um,
+        "operator_norm_squared": model._norm_cache.get("value"),
+        "parameters": model.store_attributes(),
+    }
+    try:
+        root = zarr.open_group(zarr.storage.LocalStore(tmp), mode="w", zarr_format=3)
+        for key, array in model.store_arrays().items():
+            array = np.ascontiguousarray(array)
+            root.create_array(key, shape=array.shape, dtype=array.dtype, chunks=array.shape,
+                              compressors=ZstdCodec(level=3), fill_value=0)[...] = array
+        root.attrs[MODEL_ATTRIBUTE] = json.loads(json.dumps(attributes))
+        if target.exists():
+            shutil.rmtree(target)
+        os.replace(tmp, target)
+    finally:
+        if tmp.exists():
+            shutil.rmtree(tmp, ignore_errors=True)
+
+
+def _is_model_store(path: Path) -> bool:
+    try:
+        meta = json.loads((path / "zarr.json").read_text())
+    except (OSError, ValueError):
+        return False
+    return isinstance(meta, dict) and MODEL_ATTRIBUTE in meta.get("attributes", {})
+
+
+def load_model(path: str | os.PathLike[str]) -> PSFModel:
+    """Read a model written by :func:`save_model`.
+
+    Raises
+    ------
+    ModelStoreError
+        If `path` is missing, is not a volrecon model store, is from a newer format version,
+        or lacks an array its kind needs.
+    """
+    import zarr
+
+    source = Path(path)
+    if not source.exists():
+        raise ModelStoreError(f"{source}: no such model store; run 'volrecon calibrate' to make one")
+    meta_file = source / "zarr.json"
+    try:
+        meta = json.loads(meta_file.read_text())
+    except (OSError, ValueError) as exc:
+        raise ModelStoreError(
+            f"{source}: not a zarr v3 store (no readable zarr.json); pass a directory written by "
+            "'volrecon calibrate' or PSFModel.save"
+        ) from exc
+    attributes = meta.get("attributes", {}) if isinstance(meta, dict) else {}
+    info = attributes.get(MODEL_ATTRIBUTE)
+    if not isinstance(info, dict):
+        raise ModelStoreError(
+            f"{source}: zarr store without the '{MODEL_ATTRIBUTE}' attribute, so not a volrecon "
+            "PSF model; pass a directory written by 'volrecon calibrate' or PSFModel.save"
+        )
+    version = info.get("format_version")
+    if not isinstance(version, int) or version > FORMAT_VERSION or version < 1:
+        raise ModelStoreError(
+            f"{source}: model format_version {version!r} is not supported by this volrecon "
+            f"(reads 1..{FORMAT_VERSION}); upgrade volrecon or re-run calibration"
+        )
+    kinds = model_kinds()
+    kind = info.get("kind")
+    if kind not in kinds:
+        raise ModelStoreError(
+            f"{source}: attribute '{MODEL_ATTRIBUTE}/kind' is {kind!r}; known kinds: "
+            f"{', '.join(sorted(kinds))}"
+        )
+    try:
+        geometry = Geometry(float(info["depth_step_um"]), float(info["pixel_size_um"]),
+                            float(info.get("depth_start_um", 0.0)))
+        root = zarr.open_group(zarr.storage.LocalStore(source), mode="r", zarr_format=3)
+        arrays = {key: np.asarray(arr[...]) for key, arr in root.arrays()}
+        model = kinds[kind].from_store(arrays, info.get("parameters", {}), geometry,
+                                       info.get("dtype", "float32"))
+    except KeyError as exc:
+        raise ModelStoreError(
+            f"{source}: model store lacks {exc.args[0]!r}; the store is incomplete, "
+            "re-run calibration"
+        ) from exc
+    except (ValueError, TypeError, OSError) as exc:
+        raise ModelStoreError(f"{source}: cannot read model store ({exc}); re-run calibration") from exc
+    model._seed_norm(info.get("operator_norm_squared"))
+    return model

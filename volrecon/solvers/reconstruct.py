@@ -1,0 +1,198 @@
+"""``reconstruct``: one camera frame → one volume, by ADMM, FISTA or Richardson–Lucy."""
+
+from __future__ import annotations
+
+import math
+import time
+from typing import TYPE_CHECKING, Any, Literal, overload
+
+import numpy as np
+
+from volrecon.errors import ConfigError, DataError, ShapeError
+from volrecon.solvers.admm import solve_admm
+from volrecon.solvers.fista import solve_fista
+from volrecon.solvers.info import SolveInfo, SolverState
+from volrecon.solvers.rl import solve_rl
+from volrecon.solvers.tv import tv_value
+
+if TYPE_CHECKING:
+    from volrecon._typing import Array
+    from volrecon.models.base import PSFModel
+
+__all__ = ["METHODS", "objective", "reconstruct"]
+
+METHODS = ("admm", "fista", "rl")
+_SOLVERS = {"admm": solve_admm, "fista": solve_fista, "rl": solve_rl}
+
+
+def objective(volume_zyx: Any, frame_yx: Any, model: PSFModel, *, tv: float = 0.0,
+              l1: float = 0.0, tv_z_weight: float = 1.0) -> float:
+    """``½‖A v − b‖² + l1·Σv + tv·TV(v)`` in float64 (TV as in :mod:`volrecon.solvers.tv`)."""
+    be = model.backend
+    v = be.asarray(volume_zyx, dtype=model.dtype)
+    residual = be.to_numpy(model.forward(v)).astype(np.float64) - np.asarray(
+        be.to_numpy(be.asarray(frame_yx)), dtype=np.float64)
+    value = 0.5 * float(np.vdot(residual, residual))
+    if l1:
+        value += l1 * float(be.to_numpy(v).sum(dtype=np.float64))
+    if tv:
+        value += tv * tv_value(v, tv_z_weight)
+    return value
+
+
+@overload
+def reconstruct(frame_yx: Any, model: PSFModel, *, method: str = ..., iterations: int = ...,
+                tv: float = ..., l1: float = ..., tol: float = ..., init: Any = ...,
+                device: str | None = ..., threads: int | None = ..., tv_z_weight: float = ...,
+                return_info: Literal[False] = ...) -> Array: ...
+@overload
+def reconstruct(frame_yx: Any, model: PSFModel, *, method: str = ..., iterations: int = ...,
+                tv: float = ..., l1: float = ..., tol: float = ..., init: Any = ...,
+                device: str | None = ..., threads: int | None = ..., tv_z_weight: float = ...,
+                return_info: Literal[True]) -> tuple[Array, SolveInfo]: ...
+
+
+def reconstruct(
+    frame_yx: Any,
+    model: PSFModel,
+    *,
+    method: str = "admm",
+    iterations: int = 100,
+    tv: float = 0.0,
+    l1: float = 0.0,
+    tol: float = 1e-4,
+    init: Any = None,
+    device: str | None = None,
+    threads: int | None = None,
+    tv_z_weight: float = 1.0,
+    return_info: bool = False,
+) -> Array | tuple[Array, SolveInfo]:
+    """Reconstruct the volume behind one camera frame.
+
+    Minimises ``½‖A v − b‖² + l1·Σv + tv·TV(v)`` over ``v ≥ 0``, where ``A`` is
+    ``model.forward`` and ``b`` the frame. ``TV(v) = Σ sqrt((Dy v)² + (Dx v)² + (w_z Dz v)²)``
+    with forward differences, zero outside the lateral field (Dirichlet) and Neumann ends along
+    depth; ``w_z`` is `tv_z_weight`. `l1` and `tv` are in the units of the model and the frame
+    (the model is used as given: scale the PSF and the frame consistently).
+
+    Parameters
+    ----------
+    frame_yx : ndarray of shape (Y, X)
+        Background-subtracted camera frame, float; negative values are allowed (clipped to 0
+        for "rl" only).
+    model : PSFModel
+        The forward model; ``frame_yx.shape`` must equal ``model.shape_out``.
+    method : {"admm", "fista", "rl"}
+        ADMM with the exact Fourier-domain volume update (shift-invariant models only),
+        FISTA with restart, or Richardson–Lucy (minimises the Poisson deviance instead of the
+        least-squares term; `l1` and `tv` enter its multiplicative update).
+    iterations : int
+        Maximum iterations (≥ 1).
+    tv, l1 : float
+        Regularisation weights (≥ 0).
+    tol : float
+        Stopping tolerance (≥ 0): normalised primal and dual residuals for ADMM, relative change
+        of the volume for FISTA and RL. 0 runs all `iterations`.
+    init : ndarray (Z, Y, X) or SolverState, optional
+        Warm start: a volume, or ``info.state`` of a previous frame (ADMM then also reuses its
+        duals and penalties).
+    device : {"cpu", "gpu"}, optional
+        Compute device. Default: the model's.
+    threads : int, optional
+        FFT threads on the CPU. Default: the model's.
+    tv_z_weight : float
+        Weight of depth differences in TV (> 0).
+    return_info : bool
+        Also return a :class:`SolveInfo` with diagnostics and the warm-start state.
+
+    Returns
+    -------
+    volume : ndarray of shape (Z, Y, X), float32 (or the model's dtype), ≥ 0
+        On the device of the computation (numpy on the CPU).
+    info : SolveInfo
+        Only with ``return_info=True``.
+
+    Raises
+    ------
+    ShapeError
+        If the frame or `init` shape does not match the model.
+    DataError
+        If the frame contains NaN or Inf.
+    ConfigError
+        For an unknown method, negative weights, ``iterations < 1`` or ADMM on a model
+        without transfer functions.
+
+    References
+    ----------
+    See :mod:`volrecon.solvers.admm`, :mod:`volrecon.solvers.fista`, :mod:`volrecon.solvers.rl`.
+
+    Examples
+    --------
+    >>> import numpy as np, volrecon
+    >>> psf = np.zeros((2, 16, 16), np.float32); psf[:, 8, 8] = 1.0
+    >>> model = volrecon.PSFModel.from_stack(psf, depth_step_um=2.0, pixel_size_um=1.0)
+    >>> frame = np.zeros((16, 16), np.float32); frame[5, 6] = 1.0
+    >>> volume, info = volrecon.reconstruct(frame, model, method="fista", iterations=50,
+    ...                                     return_info=True)
+    >>> volume.shape, round(float(volume.sum()), 2)
+    ((2, 16, 16), 1.0)
+    """
+    if method not in METHODS:
+        raise ConfigError(f"method must be one of {', '.join(METHODS)}; got {method!r}")
+    if not isinstance(iterations, int | np.integer) or iterations < 1:
+        raise ConfigError(f"iterations must be a positive integer; got {iterations!r}")
+    for name, value in (("tv", tv), ("l1", l1), ("tol", tol)):
+        if not (math.isfinite(value) and value >= 0):
+            raise ConfigError(f"{name} must be a finite number >= 0; got {value!r}")
+    if not (math.isfinite(tv_z_weight) and tv_z_weight > 0):
+        raise ConfigError(f"tv_z_weight must be positive; got {tv_z_weight!r}")
+    if device is not None or threads is not None:
+        model = model.on_device(device or model.backend.device,
+                                threads=threads or model.backend.threads)
+    if method == "admm" and model.transfer_functions() is None:
+        raise ConfigError(
+            f"method 'admm' needs a shift-invariant model; {type(model).__name__} is not one — "
+            "use method='fista' or 'rl'"
+        )
+    be = model.backend
+    if getattr(frame_yx, "ndim", None) != 2 or tuple(frame_yx.shape) != model.shape_out:
+        raise ShapeError(
+            f"frame must have shape (Y, X) = {model.shape_out} to match the model; "
+            f"got {getattr(frame_yx, 'shape', None)}"
+        )
+    frame = be.asarray(frame_yx, dtype=model.dtype)
+    if not bool(be.xp.isfinite(frame).all()):
+        raise DataError("frame contains NaN or Inf pixels; repair or skip the frame")
+    start = _check_init(init, model, method)
+    t0 = time.perf_counter()
+    volume, n_iter, converged, state, history = _SOLVERS[method](
+        frame, model, iterations=int(iterations), tv=float(tv), l1=float(l1), tol=float(tol),
+        tv_z_weight=float(tv_z_weight), init=start)
+    if not return_info:
+        return volume
+    seconds = time.perf_counter() - t0
+    value = objective(volume, frame, model, tv=tv, l1=l1, tv_z_weight=tv_z_weight)
+    residual = be.to_numpy(model.forward(volume)).astype(np.float64) - be.to_numpy(frame)
+    frame_norm = float(np.linalg.norm(be.to_numpy(frame)))
+    relative = float(np.linalg.norm(residual)) / frame_norm if frame_norm > 0 else float("nan")
+    info = SolveInfo(method, n_iter, value, relative, converged, seconds, state, history)
+    return volume, info
+
+
+def _check_init(init: Any, model: PSFModel, method: str) -> Any:
+    if init is None:
+        return None
+    if isinstance(init, SolverState):
+        if init.method != method:
+            return _volume_from_state(init, model)
+        return init
+    if tuple(getattr(init, "shape", ())) != model.shape_in:
+        raise ShapeError(f"init must have shape (Z, Y, X) = {model.shape_in}; "
+                         f"got {getattr(init, 'shape', None)}")
+    return model.backend.asarray(init, dtype=model.dtype)
+
+
+def _volume_from_state(state: SolverState, model: PSFModel) -> Any:
+    v = state.arrays["v"]
+    nz, ny, nx = model.shape_in
+    return model.backend.xp.ascontiguousarray(v[:, :ny, :nx])

@@ -68,12 +68,31 @@ class Backend:
             return self.fft.irfft2(a, s=shape_yx, workers=self.threads)
         return self.fft.irfft2(a, s=shape_yx)
 
-    def dct_z(self, a: Any, *, inverse: bool = False) -> Any:
-        """Orthonormal DCT-II (or its inverse) along axis -3, the depth axis."""
-        transform = self.fft.idct if inverse else self.fft.dct
-        if self.device == "cpu":
-            return transform(a, type=2, axis=-3, norm="ortho", workers=self.threads)
-        return transform(a, type=2, axis=-3, norm="ortho")
+    def irfft2_window(self, a: Any, shape_yx: tuple[int, int], window_yx: tuple[int, int], *,
+                      reverse: bool = False) -> Any:
+        """Inverse real 2-D FFT evaluated only on a ``window_yx`` corner of the grid.
+
+        Returns ``r[..., :Y, :X]`` of ``r = irfft2(a, shape_yx)`` or, with `reverse`, the
+        circularly index-reversed window ``r[..., -i mod Py, -j mod Px]``. The inverse along y
+        runs on every column, the one along x only on the Y rows kept: fewer transforms than
+        the full inverse followed by a crop.
+        """
+        py, px = shape_yx
+        ny, nx = window_yx
+        kw = {"workers": self.threads} if self.device == "cpu" else {}
+        columns = self.fft.ifft(a, axis=-2, **kw)
+        if reverse:
+            rows = self.xp.concatenate([columns[..., :1, :], columns[..., : py - ny : -1, :]],
+                                       axis=-2)
+        else:
+            rows = columns[..., :ny, :]
+        full = self.fft.irfft(rows, n=px, axis=-1, **kw)
+        if not reverse:
+            return self.xp.ascontiguousarray(full[..., :nx])
+        out = self.xp.empty((*full.shape[:-1], nx), dtype=full.dtype)
+        out[..., 0] = full[..., 0]
+        out[..., 1:] = full[..., : px - nx : -1]
+        return out
 
     def asarray(self, a: Any, dtype: Any = None) -> Any:
         """Move `a` onto this backend's device (no copy if already there)."""

@@ -79,19 +79,20 @@ class DepthConvolutionPSF(PSFModel):
         return self._spectra
 
     def _forward(self, volumes: Array) -> Array:
-        shape = self.padded_shape
-        spectra = self.backend.rfft2(volumes, shape)
+        be = self.backend
+        spectra = be.rfft2(volumes, self.padded_shape)
         spectra *= self._spectra
-        image = self.backend.irfft2(spectra.sum(axis=-3), shape)
-        ny, nx = self.shape_out
-        return self.backend.xp.ascontiguousarray(image[..., :ny, :nx])
+        return be.irfft2_window(spectra.sum(axis=-3), self.padded_shape, self.shape_out)
 
     def _adjoint(self, images: Array) -> Array:
-        shape = self.padded_shape
-        spectrum = self.backend.rfft2(images, shape)
-        planes = self.backend.irfft2(spectrum[:, None] * self._spectra.conj(), shape)
-        ny, nx = self.shape_out
-        return self.backend.xp.ascontiguousarray(planes[..., :ny, :nx])
+        # Correlation with h: irfft2(conj(Ĥ)·B̂) is, for real signals, the circular index
+        # reversal of irfft2(Ĥ·conj(B̂)); reversing only the window kept avoids a conjugated
+        # copy of the spectra.
+        be = self.backend
+        spectrum = be.rfft2(images, self.padded_shape)
+        be.xp.conjugate(spectrum, out=spectrum)
+        return be.irfft2_window(spectrum[:, None] * self._spectra, self.padded_shape,
+                                self.shape_out, reverse=True)
 
     def store_arrays(self) -> dict[str, np.ndarray]:
         return {"psf": self.psf_zyx}

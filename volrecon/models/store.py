@@ -13,7 +13,6 @@ import os
 import shutil
 import uuid
 from pathlib import Path
-from typing import Any
 
 import numpy as np
 
@@ -105,7 +104,8 @@ def load_model(path: str | os.PathLike[str]) -> PSFModel:
 
     source = Path(path)
     if not source.exists():
-        raise ModelStoreError(f"{source}: no such model store; run 'volrecon calibrate' to make one")
+        raise ModelStoreError(
+            f"{source}: no such model store; run 'volrecon calibrate' to make one")
     meta_file = source / "zarr.json"
     try:
         meta = json.loads(meta_file.read_text())
@@ -147,6 +147,7 @@ def load_model(path: str | os.PathLike[str]) -> PSFModel:
             "re-run calibration"
         ) from exc
     except (ValueError, TypeError, OSError) as exc:
-        raise ModelStoreError(f"{source}: cannot read model store ({exc}); re-run calibration") from exc
+        raise ModelStoreError(
+            f"{source}: cannot read model store ({exc}); re-run calibration") from exc
     model._seed_norm(info.get("operator_norm_squared"))
     return model

@@ -71,7 +71,8 @@ def solve_fista(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1
         y = v_next + ((t - 1.0) / t_next) * delta if not restart else v_next.copy()
         t = t_next
         norm_next = math.sqrt(float(xp.vdot(v_next.ravel(), v_next.ravel()).real))
-        change = math.sqrt(float(xp.vdot(delta.ravel(), delta.ravel()).real)) / max(norm_next, 1e-30)
+        change = math.sqrt(float(xp.vdot(delta.ravel(), delta.ravel()).real))
+        change /= max(norm_next, 1e-30)
         v = v_next
         history["iteration"].append(it)
         history["change"].append(change)

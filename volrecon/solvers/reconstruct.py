@@ -194,5 +194,5 @@ def _check_init(init: Any, model: PSFModel, method: str) -> Any:
 
 def _volume_from_state(state: SolverState, model: PSFModel) -> Any:
     v = state.arrays["v"]
-    nz, ny, nx = model.shape_in
+    _nz, ny, nx = model.shape_in
     return model.backend.xp.ascontiguousarray(v[:, :ny, :nx])

@@ -26,16 +26,14 @@ def gradient(v: Array, z_weight: float, out: Array | None = None) -> Array:
     """Forward differences of `v` (Z, Y, X) → (3, Z, Y, X): periodic in y, x; Neumann in z."""
     xp = _xp(v)
     g = xp.empty((3, *v.shape), dtype=v.dtype) if out is None else out
-    g[0, :, :-1] = v[:, 1:]
-    g[0, :, -1] = v[:, 0]
-    g[0] -= v
-    g[1, :, :, :-1] = v[:, :, 1:]
-    g[1, :, :, -1] = v[:, :, 0]
-    g[1] -= v
+    xp.subtract(v[:, 1:], v[:, :-1], out=g[0, :, :-1])
+    xp.subtract(v[:, 0], v[:, -1], out=g[0, :, -1])
+    xp.subtract(v[:, :, 1:], v[:, :, :-1], out=g[1, :, :, :-1])
+    xp.subtract(v[:, :, 0], v[:, :, -1], out=g[1, :, :, -1])
     xp.subtract(v[1:], v[:-1], out=g[2, :-1])
     g[2, -1] = 0
     if z_weight != 1.0:
-        g[2] *= z_weight
+        g[2, :-1] *= z_weight
     return g
 
 
@@ -44,18 +42,20 @@ def gradient_adjoint(g: Array, z_weight: float, out: Array | None = None) -> Arr
     xp = _xp(g)
     gy, gx, gz = g[0], g[1], g[2]
     out = xp.empty(g.shape[1:], dtype=g.dtype) if out is None else out
-    # Dyᵀ p = p[y-1] - p[y] (periodic)
-    out[:, 1:] = gy[:, :-1]
-    out[:, 0] = gy[:, -1]
-    out -= gy
+    # Dyᵀ p = p[y-1] - p[y] and Dxᵀ p = p[x-1] - p[x] (periodic)
+    xp.subtract(gy[:, :-1], gy[:, 1:], out=out[:, 1:])
+    xp.subtract(gy[:, -1], gy[:, 0], out=out[:, 0])
     out[:, :, 1:] += gx[:, :, :-1]
     out[:, :, 0] += gx[:, :, -1]
     out -= gx
     # Dzᵀ p = w (p[z-1] - p[z]) with p[-1] = 0 and the last row of p unused
     if out.shape[0] > 1:
-        scale = z_weight
-        out[1:] += scale * gz[:-1]
-        out[:-1] -= scale * gz[:-1]
+        if z_weight == 1.0:
+            out[1:] += gz[:-1]
+            out[:-1] -= gz[:-1]
+        else:
+            out[1:] += z_weight * gz[:-1]
+            out[:-1] -= z_weight * gz[:-1]
     return out
 
 

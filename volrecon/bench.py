@@ -1,0 +1,128 @@
+"""Solver speed against the FFT lower bound, measured in one run (``python -m volrecon.bench``).
+
+The lower bound of one iteration is what one application of A and one of Aᵀ cannot avoid:
+Z forward plus Z inverse real 2-D FFTs of the padded grid. Per-iteration time is measured as
+the difference between a long and a short solve divided by the extra iterations, so set-up
+costs (spectra, factorisations) do not count. Figures are ratios measured in the same
+process, because absolute times on shared machines are noisy.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import time
+from collections.abc import Sequence
+from typing import Any
+
+import numpy as np
+
+from volrecon.backend import get_backend
+from volrecon.models import PSFModel
+from volrecon.solvers import reconstruct
+
+__all__ = ["fft_lower_bound", "main", "per_iteration_seconds"]
+
+CASES = (("fista", 0.0, 1e-3), ("rl", 0.0, 0.0), ("admm", 0.0, 1e-3), ("admm", 1e-3, 0.0),
+         ("fista", 1e-3, 0.0))
+
+
+def _synchronize(backend: Any) -> None:
+    if backend.device == "gpu":
+        backend.xp.cuda.Device().synchronize()
+
+
+def fft_lower_bound(model: PSFModel, *, repeats: int = 7) -> float:
+    """Fastest of `repeats` timings of Z forward + Z inverse real 2-D FFTs of the padded grid."""
+    be = model.backend
+    shape = model.padded_shape
+    planes = be.asarray(np.random.default_rng(0).random((model.n_planes, *shape),
+                                                         dtype=np.float32), dtype=model.dtype)
+    spectra = be.rfft2(planes, shape)
+    times = []
+    for _ in range(repeats):
+        _synchronize(be)
+        t0 = time.perf_counter()
+        be.rfft2(planes, shape)
+        be.irfft2(spectra, shape)
+        _synchronize(be)
+        times.append(time.perf_counter() - t0)
+    return min(times)
+
+
+def per_iteration_seconds(frame: Any, model: PSFModel, method: str, *, tv: float, l1: float,
+                          short: int = 5, long: int = 25, repeats: int = 3) -> float:
+    """Fastest over `repeats` of (time(long) − time(short)) / (long − short), tol = 0.
+
+    The fastest run is the one least disturbed by other load on the machine.
+    """
+    samples = []
+    for _ in range(repeats):
+        durations = []
+        for n in (short, long):
+            _synchronize(model.backend)
+            t0 = time.perf_counter()
+            reconstruct(frame, model, method=method, iterations=n, tv=tv, l1=l1, tol=0.0)
+            _synchronize(model.backend)
+            durations.append(time.perf_counter() - t0)
+        samples.append((durations[1] - durations[0]) / (long - short))
+    return min(samples)
+
+
+def _problem(nz: int, ny: int, nx: int, device: str, threads: int | None) -> tuple[Any, PSFModel]:
+    rng = np.random.default_rng(1)
+    psf = rng.random((nz, ny, nx), dtype=np.float32) ** 8
+    psf /= psf.sum(axis=(1, 2), keepdims=True)
+    model = PSFModel.from_stack(psf, 2.0, 1.0).on_device(device, threads=threads)
+    truth = (rng.random((nz, ny, nx)) > 0.995).astype(np.float32)
+    frame = model.backend.to_numpy(model.forward(truth))
+    model.operator_norm_squared()
+    return frame, model
+
+
+def run(sizes: Sequence[tuple[int, int, int]], *, device: str = "cpu",
+        threads: int | None = None) -> list[dict[str, Any]]:
+    """Measure every solver case at every size; returns one record per (size, case)."""
+    records = []
+    for nz, ny, nx in sizes:
+        frame, model = _problem(nz, ny, nx, device, threads)
+        for method, tv, l1 in CASES:
+            # Time the bound right beside each case so load changes hit both alike.
+            bound = fft_lower_bound(model)
+            seconds = per_iteration_seconds(frame, model, method, tv=tv, l1=l1)
+            bound = min(bound, fft_lower_bound(model))
+            records.append({"size_zyx": [nz, ny, nx], "padded_yx": list(model.padded_shape),
+                            "method": method, "tv": tv, "l1": l1, "device": device,
+                            "threads": model.backend.threads, "seconds_per_iteration": seconds,
+                            "fft_bound_seconds": bound, "ratio_to_bound": seconds / bound})
+    return records
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Print the figures (a table, or JSON with ``--json``)."""
+    parser = argparse.ArgumentParser(prog="volrecon bench", description=__doc__)
+    parser.add_argument("--size", type=int, nargs=3, action="append", metavar=("Z", "Y", "X"))
+    parser.add_argument("--device", choices=("cpu", "gpu"), default="cpu")
+    parser.add_argument("--threads", type=int, default=None)
+    parser.add_argument("--json", action="store_true")
+    args = parser.parse_args(argv)
+    sizes = [tuple(s) for s in args.size] if args.size else [(16, 128, 128)]
+    get_backend(args.device, threads=args.threads)  # fail early with a clear message
+    records = run(sizes, device=args.device, threads=args.threads)  # type: ignore[arg-type]
+    if args.json:
+        json.dump(records, sys.stdout, indent=1)
+        sys.stdout.write("\n")
+        return 0
+    print(f"{'size (Z,Y,X)':>16} {'method':>6} {'tv':>7} {'l1':>7} {'s/iter':>10} "
+          f"{'FFT bound':>10} {'ratio':>6}")
+    for r in records:
+        z, y, x = r["size_zyx"]
+        print(f"{f'{z}x{y}x{x}':>16} {r['method']:>6} {r['tv']:>7.0e} {r['l1']:>7.0e} "
+              f"{r['seconds_per_iteration']:>10.5f} {r['fft_bound_seconds']:>10.5f} "
+              f"{r['ratio_to_bound']:>6.2f}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

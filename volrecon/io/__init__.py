@@ -1,1 +1,31 @@
-"""io stage of volrecon."""
+"""Input and output: lazy frame readers, camera corrections, fingerprints, OME-Zarr writing."""
+
+from volrecon.io.correct import FrameCorrection
+from volrecon.io.fingerprint import fingerprint_file, fingerprint_frames, fingerprint_tree
+from volrecon.io.frames import (
+    FrameSource,
+    TiffFrames,
+    TiffGlobFrames,
+    ZarrFrames,
+    natural_sort_key,
+    open_frames,
+    read_image,
+)
+from volrecon.io.ome_zarr import create_ome_image, ome_image_attributes, volume_chunks
+
+__all__ = [
+    "FrameCorrection",
+    "FrameSource",
+    "TiffFrames",
+    "TiffGlobFrames",
+    "ZarrFrames",
+    "create_ome_image",
+    "fingerprint_file",
+    "fingerprint_frames",
+    "fingerprint_tree",
+    "natural_sort_key",
+    "ome_image_attributes",
+    "open_frames",
+    "read_image",
+    "volume_chunks",
+]

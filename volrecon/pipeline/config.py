@@ -1,0 +1,287 @@
+"""The job file: TOML, checked against ``schemas/job.schema.json``, turned into frozen settings.
+
+Unknown keys and wrong types are refused with the key's dotted path and the job file's name.
+Relative paths are resolved against the job file's folder.
+"""
+
+from __future__ import annotations
+
+import copy
+import json
+import os
+import tomllib
+from dataclasses import dataclass, field
+from functools import cache
+from pathlib import Path
+from typing import Any
+
+from volrecon.errors import ConfigError
+
+__all__ = [
+    "ComputeSettings",
+    "JobConfig",
+    "SolverSettings",
+    "job_from_dict",
+    "job_schema",
+    "load_job",
+]
+
+SCHEMA_PATH = Path(__file__).resolve().parent.parent / "schemas" / "job.schema.json"
+#: Keys whose values are paths; the store compares their fingerprints, not their spelling.
+PATH_KEYS = (("model", "path"), ("video", "path"), ("video", "dark"), ("video", "flat"),
+             ("output", "path"))
+
+
+@cache
+def job_schema() -> dict[str, Any]:
+    """The job file's JSON Schema (2020-12) as a dict (a fresh copy each call is not made)."""
+    with open(SCHEMA_PATH, encoding="utf-8") as handle:
+        return json.load(handle)  # type: ignore[no-any-return]
+
+
+@dataclass(frozen=True)
+class SolverSettings:
+    """The ``[solver]`` section: arguments of :func:`volrecon.reconstruct` for every frame."""
+
+    method: str = "admm"
+    iterations: int = 60
+    tv: float = 0.0
+    l1: float = 0.0
+    tol: float = 1e-4
+    tv_z_weight: float = 1.0
+    warm_start: bool = True
+    warm_start_frames: int = 8
+    max_residual: float = 2.0
+
+    @property
+    def chain_frames(self) -> int:
+        """Frames per warm-start chain (1 without warm start)."""
+        return self.warm_start_frames if self.warm_start else 1
+
+
+@dataclass(frozen=True)
+class ComputeSettings:
+    """The ``[compute]`` section: how work is spread. Never changes the results."""
+
+    scheduler: str = "threads"
+    workers: int = 1
+    frames_per_task: int = 8
+    device: str = "cpu"
+    threads: int | None = None
+
+    @property
+    def is_distributed(self) -> bool:
+        """True for a dask.distributed scheduler (LocalCluster or an address)."""
+        return self.scheduler == "local-cluster" or "://" in self.scheduler
+
+
+@dataclass(frozen=True)
+class JobConfig:
+    """A validated job.
+
+    Attributes
+    ----------
+    source : str
+        Where the job came from (the job file's path), for messages.
+    document : dict
+        The validated job document with defaults filled in, paths as written.
+    base_dir : Path
+        Folder that relative paths are relative to.
+    model_path, video_path, output_path : Path
+        Resolved paths (`video_path` may be a glob pattern).
+    video_component : str
+        Array path inside a zarr video store.
+    dark_path, flat_path : Path or None
+        Calibration images.
+    frames : tuple of int or None
+        Half-open video frame range.
+    binning : int
+        Lateral binning of raw frames.
+    time_interval_s : float
+        Frame interval.
+    max_projections : bool
+        Write max projections.
+    compression_level : int
+        zstd level of the output.
+    solver : SolverSettings
+    compute : ComputeSettings
+    """
+
+    source: str
+    document: dict[str, Any] = field(repr=False)
+    base_dir: Path
+    model_path: Path
+    video_path: Path
+    output_path: Path
+    video_component: str = ""
+    dark_path: Path | None = None
+    flat_path: Path | None = None
+    frames: tuple[int, int] | None = None
+    binning: int = 1
+    time_interval_s: float = 1.0
+    max_projections: bool = False
+    compression_level: int = 3
+    solver: SolverSettings = SolverSettings()
+    compute: ComputeSettings = ComputeSettings()
+
+    def settings(self) -> dict[str, Any]:
+        """The job's settings as the store records them: every section but ``[compute]``.
+
+        Paths are kept as written in the job file (provenance); a resumed job is compared
+        through :meth:`comparable_settings`, where input paths are replaced by fingerprints.
+        """
+        return {key: copy.deepcopy(value) for key, value in self.document.items()
+                if key != "compute"}
+
+    def comparable_settings(self, fingerprints: dict[str, str]) -> dict[str, Any]:
+        """Settings without path spellings: each input path becomes its file's fingerprint."""
+        settings = self.settings()
+        for section, key in PATH_KEYS:
+            if key in settings.get(section, {}):
+                if section == "output":
+                    del settings[section][key]
+                else:
+                    settings[section][key] = fingerprints.get(f"{section}.{key}", "")
+        return settings
+
+    def with_compute(self, **changes: Any) -> JobConfig:
+        """A copy with other ``[compute]`` settings (checked against the schema)."""
+        document = copy.deepcopy(self.document)
+        document["compute"].update(changes)
+        return job_from_dict(document, base_dir=self.base_dir, source=self.source)
+
+
+def load_job(path: str | os.PathLike[str]) -> JobConfig:
+    """Read and validate a TOML job file.
+
+    Parameters
+    ----------
+    path : str or path
+        The job file; relative paths inside it are relative to its folder.
+
+    Returns
+    -------
+    JobConfig
+
+    Raises
+    ------
+    ConfigError
+        If the file is missing, not valid TOML, or breaks the schema (unknown key, wrong type,
+        value out of range), naming the key.
+    """
+    job_path = Path(path)
+    try:
+        text = job_path.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise ConfigError(f"{job_path}: cannot read the job file ({exc.strerror})") from exc
+    try:
+        document = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{job_path}: not valid TOML ({exc}); fix the syntax") from exc
+    return job_from_dict(document, base_dir=job_path.resolve().parent, source=str(job_path))
+
+
+def job_from_dict(document: dict[str, Any], *, base_dir: str | os.PathLike[str] | None,
+                  source: str = "job") -> JobConfig:
+    """Validate a job given as a dict (the parsed TOML) and resolve its paths.
+
+    Parameters
+    ----------
+    document : dict
+        Sections ``model``, ``video``, ``solver``, ``output``, ``compute``.
+    base_dir : str or path or None
+        Folder that relative paths are relative to (the job file's). None: the current folder.
+    source : str
+        Name used in messages.
+
+    Raises
+    ------
+    ConfigError
+        If the document breaks the schema or its frame range is empty.
+    """
+    _validate(document, source)
+    document = _with_defaults(copy.deepcopy(document), job_schema())
+    base = Path(base_dir) if base_dir is not None else Path.cwd()
+    video, output = document["video"], document["output"]
+    frames = None
+    if "frames" in video:
+        start, stop = video["frames"]
+        if stop <= start:
+            raise ConfigError(
+                f"{source}: key 'video.frames' is [{start}, {stop}]; stop must be larger than "
+                "start (a half-open range)"
+            )
+        frames = (int(start), int(stop))
+    compute = document["compute"]
+    return JobConfig(
+        source=source,
+        document=document,
+        base_dir=base,
+        model_path=_resolve(base, document["model"]["path"]),
+        video_path=_resolve(base, video["path"]),
+        output_path=_resolve(base, output["path"]),
+        video_component=video.get("component", ""),
+        dark_path=_resolve(base, video["dark"]) if "dark" in video else None,
+        flat_path=_resolve(base, video["flat"]) if "flat" in video else None,
+        frames=frames,
+        binning=int(video["binning"]),
+        time_interval_s=float(output["time_interval_s"]),
+        max_projections=bool(output["max_projections"]),
+        compression_level=int(output["compression_level"]),
+        solver=SolverSettings(**document["solver"]),
+        compute=ComputeSettings(**{k: compute[k] for k in compute}),
+    )
+
+
+def _resolve(base: Path, text: str) -> Path:
+    path = Path(os.path.expanduser(text))
+    return path if path.is_absolute() else base / path
+
+
+def _with_defaults(document: dict[str, Any], schema: dict[str, Any]) -> dict[str, Any]:
+    """Fill each schema default into `document` (sections included), recursively."""
+    for key, sub in schema.get("properties", {}).items():
+        if sub.get("type") == "object":
+            if key not in document and key not in schema.get("required", []):
+                document[key] = {}
+            if key in document:
+                _with_defaults(document[key], sub)
+        elif key not in document and "default" in sub:
+            document[key] = copy.deepcopy(sub["default"])
+    return document
+
+
+def _validate(document: Any, source: str) -> None:
+    import jsonschema
+
+    validator = jsonschema.Draft202012Validator(job_schema())
+    errors = sorted(validator.iter_errors(document),
+                    key=lambda e: (list(map(str, e.absolute_path)), e.validator))
+    if not errors:
+        return
+    error = errors[0]
+    where = ".".join(str(p) for p in error.absolute_path)
+    if error.validator == "additionalProperties":
+        allowed = sorted(error.schema.get("properties", {}))
+        unknown = sorted(set(error.instance) - set(allowed))
+        key = ".".join([*map(str, error.absolute_path), unknown[0]]) if unknown else where
+        raise ConfigError(
+            f"{source}: unknown key '{key}'; allowed here: {', '.join(allowed)} "
+            "(see schemas/job.schema.json)"
+        )
+    if error.validator == "required":
+        missing = [name for name in error.validator_value if name not in error.instance]
+        key = ".".join([*map(str, error.absolute_path), missing[0]]) if missing else where
+        raise ConfigError(f"{source}: required key '{key}' is missing; add it to the job file")
+    if error.validator == "type":
+        expected = error.validator_value
+        raise ConfigError(
+            f"{source}: key '{where}' must be of type {expected}; got {error.instance!r}"
+        )
+    if error.validator == "pattern" and where == "compute.scheduler":
+        raise ConfigError(
+            f"{source}: key 'compute.scheduler' is {error.instance!r}; use threads, processes, "
+            "synchronous, local-cluster or a tcp://host:port address"
+        )
+    message = error.message.replace("\n", " ")
+    raise ConfigError(f"{source}: key '{where or '(top level)'}': {message}; fix the job file")

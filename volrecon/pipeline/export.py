@@ -1,0 +1,122 @@
+"""Export a job's volumes (or their max projections) as an ImageJ hyperstack TIFF."""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Iterator
+from pathlib import Path
+
+import numpy as np
+
+from volrecon.errors import ConfigError
+from volrecon.pipeline.store import JobStore
+
+__all__ = ["export_tiff", "parse_frame_range"]
+
+#: ImageJ hyperstacks are classic TIFF: keep well below the 4 GiB offset limit.
+MAX_IMAGEJ_BYTES = 4_000_000_000
+PROJECTION_KINDS = ("max",)
+
+
+def parse_frame_range(text: str | None, n_frames: int) -> slice:
+    """Parse ``"a:b"`` (either side optional, half-open, negative counts from the end).
+
+    Raises
+    ------
+    ConfigError
+        If the text is not of that form or the range is empty.
+    """
+    if text is None:
+        return slice(0, n_frames)
+    parts = text.split(":")
+    try:
+        if len(parts) != 2:
+            raise ValueError(text)
+        start = int(parts[0]) if parts[0].strip() else None
+        stop = int(parts[1]) if parts[1].strip() else None
+    except ValueError:
+        raise ConfigError(f"--frames {text!r}: expected start:stop, e.g. 0:100") from None
+    first, last, _ = slice(start, stop).indices(n_frames)
+    if last <= first:
+        raise ConfigError(
+            f"--frames {text!r} selects no frame of the {n_frames} in the store; use a range "
+            f"inside 0:{n_frames}"
+        )
+    return slice(first, last)
+
+
+def export_tiff(store_path: str | os.PathLike[str], tiff_path: str | os.PathLike[str], *,
+                frames: str | None = None, projection: str | None = None) -> Path:
+    """Write store frames as an ImageJ-compatible float32 hyperstack.
+
+    Parameters
+    ----------
+    store_path : str or path
+        A job's output store.
+    tiff_path : str or path
+        The TIFF to write (replaced if it exists).
+    frames : str, optional
+        ``"a:b"`` store frames (half-open); default all.
+    projection : {"max"}, optional
+        Export the maximum projection along z (axes TYX) instead of the volumes (TZYX).
+
+    Returns
+    -------
+    Path
+        `tiff_path`.
+
+    Notes
+    -----
+    Frames are read and written one at a time, so memory holds one volume. Frames not yet
+    reconstructed, or failed, are NaN. The file records the voxel size (resolution in
+    pixels per micrometre, ``spacing`` in micrometres) and ``finterval`` in seconds.
+
+    Raises
+    ------
+    InputFileError
+        If `store_path` is not a volrecon output store.
+    ConfigError
+        For a bad frame range or projection, or a result over ImageJ's 4 GB limit.
+    """
+    import tifffile
+
+    if projection is not None and projection not in PROJECTION_KINDS:
+        raise ConfigError(f"--projection {projection!r}: use one of {', '.join(PROJECTION_KINDS)}")
+    store = JobStore.open(store_path, mode="r")
+    image = store.image
+    selected = parse_frame_range(frames, store.n_frames)
+    scale = store.group.attrs["ome"]["multiscales"][0]["datasets"][0][
+        "coordinateTransformations"][0]["scale"]
+    finterval, spacing, pixel_y, pixel_x = (float(s) for s in scale)
+    _, nz, ny, nx = image.shape
+    n_out = selected.stop - selected.start
+    projected = projection is not None
+    shape = (n_out, ny, nx) if projected else (n_out, nz, ny, nx)
+    size = int(np.prod(shape)) * 4
+    if size > MAX_IMAGEJ_BYTES:
+        raise ConfigError(
+            f"{store_path}: {n_out} frames make {size / 1e9:.1f} GB, over the ImageJ TIFF limit "
+            "of 4 GB; export fewer frames with --frames or use --projection max"
+        )
+    source = None
+    if projected and "projections" in store.group:
+        source = store.group["projections/max_z"]
+
+    def planes() -> Iterator[np.ndarray]:
+        for t in range(selected.start, selected.stop):
+            if projected:
+                plane = (np.asarray(source[t]) if source is not None
+                         else np.max(np.asarray(image[t]), axis=0))
+                yield plane.astype(np.float32, copy=False)
+            else:
+                volume = np.asarray(image[t], dtype=np.float32)
+                yield from volume
+
+    out = Path(tiff_path)
+    metadata = {"axes": "TYX" if projected else "TZYX", "unit": "um", "finterval": finterval}
+    if not projected:
+        metadata["spacing"] = spacing
+    with tifffile.TiffWriter(out, imagej=True) as writer:
+        writer.write(planes(), shape=shape, dtype=np.float32,
+                     resolution=(1.0 / pixel_x, 1.0 / pixel_y), metadata=metadata)
+    return out

@@ -1,0 +1,386 @@
+"""Run a job: validate everything, take the store's lock, compute what is missing, record it.
+
+Order of work, so that a bad job never touches an existing store:
+
+1. :func:`prepare_job` loads the model, opens the video and the calibration images, checks the
+   frame range and the frame/model shapes, and fingerprints the inputs;
+2. the lock beside the store is taken (a live second writer is refused, a stale lock is
+   taken over);
+3. the store is created, or opened and its recorded settings compared (refused when they
+   differ, unless ``restart``, which only now deletes the old store);
+4. tasks are planned from the frames still pending and run; each finished task's frames are
+   marked done after their volumes are written;
+5. the run's record (start, end, outcome, frames) is appended to the store's provenance.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import platform
+import socket
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from volrecon.errors import ConfigError, InputFileError, ShapeError, StoreMismatchError
+from volrecon.io.correct import FrameCorrection
+from volrecon.io.fingerprint import fingerprint_file, fingerprint_frames, fingerprint_tree
+from volrecon.io.frames import FrameSource, open_frames, read_image
+from volrecon.pipeline.config import JobConfig, load_job
+from volrecon.pipeline.execute import execute_tasks, fft_threads_per_task
+from volrecon.pipeline.lock import StoreLock
+from volrecon.pipeline.plan import plan_tasks
+from volrecon.pipeline.store import (
+    STATUS_FAILED,
+    STATUS_PENDING,
+    FrameRecords,
+    JobStore,
+    is_job_store,
+)
+from volrecon.pipeline.task import TaskContext
+
+if TYPE_CHECKING:
+    from volrecon.models.base import PSFModel
+
+__all__ = ["JobProgress", "JobResult", "PreparedJob", "prepare_job", "run_job"]
+
+logger = logging.getLogger(__name__)
+
+
+@dataclass(frozen=True, eq=False)
+class PreparedJob:
+    """A job whose inputs were opened and checked (nothing written yet).
+
+    Attributes
+    ----------
+    job : JobConfig
+    model : PSFModel
+        The loaded model (on the CPU).
+    source : FrameSource
+        The raw video.
+    correction : FrameCorrection
+        Dark, flat and binning.
+    first_frame, n_frames : int
+        Video frames ``first_frame : first_frame + n_frames`` are reconstructed.
+    fingerprints : dict of str to str
+        ``"model.path"``, ``"video.path"`` and, if given, ``"video.dark"``/``"video.flat"``.
+    """
+
+    job: JobConfig
+    model: PSFModel
+    source: FrameSource
+    correction: FrameCorrection
+    first_frame: int
+    n_frames: int
+    fingerprints: dict[str, str]
+
+
+@dataclass(frozen=True)
+class JobProgress:
+    """Where a run stands, passed to the progress callback after each task.
+
+    Attributes
+    ----------
+    done : int
+        Frames finished (done or failed), this run and earlier ones.
+    total : int
+        Frames of the job.
+    failed : int
+        Frames that failed.
+    computed : int
+        Frames finished by this run.
+    elapsed_s : float
+        Seconds since this run started computing.
+    frames_per_second : float
+        This run's throughput.
+    eta_s : float
+        Seconds left at this throughput (``inf`` before the first task ends).
+    """
+
+    done: int
+    total: int
+    failed: int
+    computed: int
+    elapsed_s: float
+    frames_per_second: float
+    eta_s: float
+
+
+@dataclass(frozen=True)
+class JobResult:
+    """What a finished (or stopped) run left in the store.
+
+    Attributes
+    ----------
+    store_path : Path
+    total, done, failed, computed : int
+        See :class:`JobProgress`.
+    seconds : float
+        Wall-clock time of the run.
+    """
+
+    store_path: Path
+    total: int
+    done: int
+    failed: int
+    computed: int
+    seconds: float
+
+    @property
+    def complete(self) -> bool:
+        """True when every frame is done or failed."""
+        return self.done == self.total
+
+
+def prepare_job(job: JobConfig) -> PreparedJob:
+    """Open and check every input of `job` without writing anything.
+
+    Raises
+    ------
+    ModelStoreError
+        If the model store cannot be loaded.
+    InputFileError
+        If the video or a calibration image is missing, unreadable or truncated.
+    ShapeError
+        If the (binned) frames do not match the model's sensor shape or the calibration
+        images the frames.
+    ConfigError
+        If the frame range is outside the video.
+    BackendError
+        If ``device = "gpu"`` and no GPU can be used.
+    """
+    from volrecon.backend import get_backend
+    from volrecon.models.base import PSFModel
+
+    model = PSFModel.load(job.model_path)
+    source = open_frames(job.video_path, component=job.video_component)
+    dark = read_image(job.dark_path) if job.dark_path is not None else None
+    flat = read_image(job.flat_path) if job.flat_path is not None else None
+    correction = FrameCorrection.build(dark_yx=dark, flat_yx=flat, binning=job.binning,
+                                       name_dark=str(job.dark_path),
+                                       name_flat=str(job.flat_path))
+    raw_shape = source.shape[1:]
+    correction.check_shape(raw_shape, where=source.description)
+    corrected = correction.output_shape(raw_shape)
+    if corrected != tuple(model.shape_out):
+        raise ShapeError(
+            f"{source.description}: frames of {raw_shape} pixels"
+            + (f" (binned by {job.binning}: {corrected})" if job.binning > 1 else "")
+            + f" do not match the model {job.model_path}, which expects {tuple(model.shape_out)}"
+            + f"; {_binning_hint(raw_shape, tuple(model.shape_out), job.binning)}"
+        )
+    if job.frames is None:
+        first, n_frames = 0, source.n_frames
+    else:
+        first, stop = job.frames
+        if stop > source.n_frames:
+            raise ConfigError(
+                f"{job.source}: key 'video.frames' asks for frames up to {stop} but "
+                f"{source.description} has {source.n_frames}; use stop <= {source.n_frames}"
+            )
+        n_frames = stop - first
+    if job.compute.device != "cpu":
+        get_backend(job.compute.device)
+    fingerprints = {"model.path": fingerprint_tree(job.model_path),
+                    "video.path": fingerprint_frames(source)}
+    if job.dark_path is not None:
+        fingerprints["video.dark"] = fingerprint_file(job.dark_path)
+    if job.flat_path is not None:
+        fingerprints["video.flat"] = fingerprint_file(job.flat_path)
+    return PreparedJob(job=job, model=model, source=source, correction=correction,
+                       first_frame=first, n_frames=n_frames, fingerprints=fingerprints)
+
+
+def _binning_hint(raw: tuple[int, ...], model: tuple[int, ...], binning: int) -> str:
+    ratios = {raw[0] / model[0], raw[1] / model[1]}
+    if len(ratios) == 1:
+        ratio = ratios.pop()
+        if ratio == int(ratio) and int(ratio) != binning and ratio >= 1:
+            return f"set [video] binning = {int(ratio)}"
+    return "use a model calibrated for this camera and binning"
+
+
+def run_job(job: JobConfig | str | os.PathLike[str], *, restart: bool = False,
+            progress: Callable[[JobProgress], None] | None = None,
+            client: Any = None) -> JobResult:
+    """Reconstruct every pending frame of a job into its OME-Zarr store.
+
+    Parameters
+    ----------
+    job : JobConfig or path
+        A job, or the path of its TOML file.
+    restart : bool
+        Delete an existing store of this job and start over (only after the new job has been
+        checked, and only if the path holds a volrecon output store).
+    progress : callable, optional
+        Called with a :class:`JobProgress` after each finished task, in this thread.
+    client : distributed.Client, optional
+        Run on this dask.distributed client (e.g. of a dask-jobqueue cluster) instead of
+        ``[compute] scheduler``.
+
+    Returns
+    -------
+    JobResult
+
+    Raises
+    ------
+    ConfigError, InputFileError, ModelStoreError, ShapeError, BackendError
+        For a bad job (see :func:`prepare_job`); nothing is written then.
+    StoreLockedError
+        If another live process is writing the store.
+    StoreMismatchError
+        If the store was written with other settings and `restart` is false.
+    KeyboardInterrupt
+        On Ctrl-C; the store stays consistent and the next run continues it.
+
+    Notes
+    -----
+    Results do not depend on ``[compute]``, on the task size or on where a job was stopped:
+    the resumed store is bit-identical to an uninterrupted one.
+    """
+    if not isinstance(job, JobConfig):
+        job = load_job(job)
+    prepared = prepare_job(job)
+    lock = StoreLock(job.output_path).acquire()
+    try:
+        store = _open_store(prepared, restart=restart)
+        return _run(prepared, store, progress=progress, client=client)
+    finally:
+        lock.release()
+
+
+def _open_store(prepared: PreparedJob, *, restart: bool) -> JobStore:
+    job = prepared.job
+    path = job.output_path
+    comparable = job.comparable_settings(prepared.fingerprints)
+    if restart:
+        JobStore.wipe(path)
+    elif path.exists() and is_job_store(path):
+        try:
+            store = JobStore.open(path)
+        except InputFileError:
+            logger.warning("%s: its creation was interrupted; creating it again", path)
+            JobStore.wipe(path)
+        else:
+            store.check_settings(comparable, job_source=job.source)
+            expected = (prepared.n_frames, *prepared.model.shape_in)
+            if tuple(store.image.shape) != expected:
+                raise StoreMismatchError(
+                    f"{path}: image has shape {tuple(store.image.shape)} but this job makes "
+                    f"{expected}; re-run with --restart to start over"
+                )
+            return store
+    elif path.exists() and not (path.is_dir() and not any(path.iterdir())):
+        raise ConfigError(
+            f"{path}: exists and is not a volrecon output store; choose another [output] path"
+        )
+    return _create_store(prepared, comparable)
+
+
+def _create_store(prepared: PreparedJob, comparable: dict[str, Any]) -> JobStore:
+    import dask
+    import zarr
+
+    from volrecon import __version__
+
+    job, model = prepared.job, prepared.model
+    geometry = model.geometry
+    metadata = {
+        "settings": job.settings(),
+        "comparable_settings": comparable,
+        "fingerprints": prepared.fingerprints,
+        "video": {"path": os.fspath(job.video_path), "first_frame": prepared.first_frame,
+                  "n_frames": prepared.n_frames,
+                  "frame_shape_yx": list(prepared.source.shape[1:]),
+                  "dtype": prepared.source.dtype.name},
+        "model": {"path": os.fspath(job.model_path), "kind": model.kind,
+                  "shape_zyx": list(model.shape_in),
+                  "depth_step_um": geometry.depth_step_um,
+                  "pixel_size_um": geometry.pixel_size_um,
+                  "depth_start_um": geometry.depth_start_um},
+        "provenance": {"volrecon_version": __version__, "created": _now(),
+                       "job_file": job.source, "python": platform.python_version(),
+                       "numpy": np.__version__, "zarr": zarr.__version__,
+                       "dask": dask.__version__},
+        "runs": [],
+    }
+    return JobStore.create(
+        job.output_path, shape_zyx=model.shape_in, n_frames=prepared.n_frames,
+        scale_tzyx=(job.time_interval_s, geometry.depth_step_um, geometry.pixel_size_um,
+                    geometry.pixel_size_um),
+        depth_start_um=geometry.depth_start_um, metadata=metadata,
+        projections=job.max_projections, compression_level=job.compression_level)
+
+
+def _run(prepared: PreparedJob, store: JobStore, *,
+         progress: Callable[[JobProgress], None] | None, client: Any) -> JobResult:
+    job = prepared.job
+    started = time.time()
+    status = store.status()
+    done_before = int(np.count_nonzero(status != STATUS_PENDING))
+    failed = int(np.count_nonzero(status == STATUS_FAILED))
+    removed = store.remove_partial_files()
+    if removed:
+        logger.info("%s: removed %d partial files of an interrupted write", store.path, removed)
+    fft_threads = fft_threads_per_task(job.compute)
+    runs = list(store.attributes.get("runs", []))
+    run_record: dict[str, Any] = {
+        "started": _now(), "started_epoch_s": started, "host": socket.gethostname(),
+        "pid": os.getpid(), "scheduler": job.compute.scheduler if client is None else "client",
+        "workers": job.compute.workers, "frames_per_task": job.compute.frames_per_task,
+        "device": job.compute.device, "fft_threads": fft_threads,
+        "frames_done_before": done_before, "outcome": "running"}
+    store.update_attributes(runs=[*runs, run_record])
+    tasks = plan_tasks(status, chain_frames=job.solver.chain_frames,
+                       frames_per_task=job.compute.frames_per_task)
+    context = TaskContext(
+        source=prepared.source, first_frame=prepared.first_frame,
+        correction=prepared.correction, model_path=os.fspath(job.model_path),
+        model_fingerprint=prepared.fingerprints["model.path"], solver=job.solver,
+        device=job.compute.device, fft_threads=fft_threads,
+        store_path=os.fspath(store.path), projections=job.max_projections)
+    total = store.n_frames
+    counts = {"done": done_before, "failed": failed, "computed": 0}
+    compute_started = time.perf_counter()
+
+    def on_result(records: FrameRecords) -> None:
+        old = status[records.start:records.stop]
+        store.record(records)
+        newly = int(np.count_nonzero(old == STATUS_PENDING))
+        counts["done"] += newly
+        counts["computed"] += records.stop - records.start
+        counts["failed"] += int(np.count_nonzero(records.status == STATUS_FAILED)) - int(
+            np.count_nonzero(old == STATUS_FAILED))
+        status[records.start:records.stop] = records.status
+        if progress is not None:
+            elapsed = time.perf_counter() - compute_started
+            rate = counts["computed"] / elapsed if elapsed > 0 else 0.0
+            eta = (total - counts["done"]) / rate if rate > 0 else float("inf")
+            progress(JobProgress(done=counts["done"], total=total, failed=counts["failed"],
+                                 computed=counts["computed"], elapsed_s=elapsed,
+                                 frames_per_second=rate, eta_s=eta))
+
+    outcome = "error"
+    try:
+        execute_tasks(tasks, context, job.compute, on_result, client=client)
+        outcome = "complete" if counts["done"] == total else "stopped"
+    except KeyboardInterrupt:
+        outcome = "interrupted"
+        raise
+    finally:
+        ended = time.time()
+        run_record.update(ended=_now(), ended_epoch_s=ended, outcome=outcome,
+                          frames_done_after=counts["done"], frames_computed=counts["computed"])
+        store.update_attributes(runs=[*runs, run_record])
+    return JobResult(store_path=store.path, total=total, done=counts["done"],
+                     failed=counts["failed"], computed=counts["computed"],
+                     seconds=time.time() - started)
+
+
+def _now() -> str:
+    return time.strftime("%Y-%m-%dT%H:%M:%S%z")

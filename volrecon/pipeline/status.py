@@ -1,0 +1,117 @@
+"""Read where a job's store stands — safe while a run is writing it, or after a crash."""
+
+from __future__ import annotations
+
+import json
+import os
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from volrecon.errors import InputFileError
+from volrecon.pipeline.lock import StoreLock, read_lock
+from volrecon.pipeline.store import (
+    STATUS_FAILED,
+    STATUS_PENDING,
+    STORE_ATTRIBUTE,
+    JobStore,
+    is_job_store,
+)
+
+__all__ = ["StoreStatus", "store_status"]
+
+
+@dataclass(frozen=True)
+class StoreStatus:
+    """A snapshot of a job's output store.
+
+    Attributes
+    ----------
+    path : Path
+        The store.
+    total, done, failed : int
+        Frames of the job; finished (done or failed); failed.
+    failures : dict of int to str
+        Reason of each failed frame.
+    running : bool
+        A live process holds the store's lock.
+    holder : dict or None
+        That process's pid, host and start time (or a dead holder's, if not ``running``).
+    frames_per_second : float
+        Throughput of the current run (or of the last one).
+    eta_s : float
+        Seconds until the current run is done at that throughput (``nan`` if not running).
+    runs : list of dict
+        Every run's record (start, end, outcome, scheduler, …).
+    """
+
+    path: Path
+    total: int
+    done: int
+    failed: int
+    failures: dict[int, str] = field(default_factory=dict)
+    running: bool = False
+    holder: dict[str, Any] | None = None
+    frames_per_second: float = float("nan")
+    eta_s: float = float("nan")
+    runs: list[dict[str, Any]] = field(default_factory=list)
+
+    @property
+    def pending(self) -> int:
+        """Frames not finished yet."""
+        return self.total - self.done
+
+    @property
+    def state(self) -> str:
+        """``"running"``, ``"complete"`` or ``"stopped"``."""
+        if self.running:
+            return "running"
+        return "complete" if self.done == self.total else "stopped"
+
+
+def store_status(path: str | os.PathLike[str]) -> StoreStatus:
+    """Count done, failed and pending frames of a job's store, without taking its lock.
+
+    Raises
+    ------
+    InputFileError
+        If `path` is not a volrecon output store.
+    """
+    path = Path(path)
+    if not is_job_store(path):
+        raise InputFileError(
+            f"{path}: not a volrecon output store; give the [output] path of a job"
+        )
+    running = StoreLock.holder_alive(path)
+    holder = read_lock(path)
+    try:
+        store = JobStore.open(path, mode="r")
+    except InputFileError:
+        # Killed while creating the store: nothing is done yet.
+        attributes = json.loads((path / "zarr.json").read_text())["attributes"][STORE_ATTRIBUTE]
+        total = int(attributes.get("video", {}).get("n_frames", 0))
+        return StoreStatus(path=path, total=total, done=0, failed=0, running=running,
+                           holder=holder)
+    status = store.status()
+    done = int(np.count_nonzero(status != STATUS_PENDING))
+    failed = int(np.count_nonzero(status == STATUS_FAILED))
+    runs = list(store.attributes.get("runs", []))
+    rate, eta = float("nan"), float("nan")
+    if runs:
+        last = runs[-1]
+        before = int(last.get("frames_done_before", 0))
+        start = float(last.get("started_epoch_s", 0.0))
+        if running and last.get("outcome") == "running":
+            elapsed = time.time() - start
+            rate = (done - before) / elapsed if elapsed > 0 else float("nan")
+            eta = (len(status) - done) / rate if rate > 0 else float("inf")
+        elif "ended_epoch_s" in last:
+            elapsed = float(last["ended_epoch_s"]) - start
+            computed = int(last.get("frames_done_after", before)) - before
+            rate = computed / elapsed if elapsed > 0 and computed > 0 else float("nan")
+    return StoreStatus(path=path, total=len(status), done=done, failed=failed,
+                       failures=store.failures(), running=running, holder=holder,
+                       frames_per_second=rate, eta_s=eta, runs=runs)

@@ -1,0 +1,384 @@
+"""The output store of a job: OME-Zarr image, per-frame diagnostics, settings and provenance.
+
+Layout (zarr v3; ``schemas/output-store`` in the README describes it for users)::
+
+    volumes.zarr/                      group; attributes "ome" (OME-NGFF 0.5) and "volrecon"
+      0                                (T, Z, Y, X) float32, one frame per chunk, NaN = not done
+      diagnostics/                     group; attribute "failures" {frame: reason}
+        status      (T,) uint8         0 pending, 1 done, 2 failed — written last, by the driver
+        iterations  (T,) int32
+        objective   (T,) float64
+        residual    (T,) float64       |Av - b| / |b|
+        converged   (T,) bool
+        seconds     (T,) float32
+      projections/                     only with [output] max_projections = true
+        max_z (T, Y, X), max_y (T, Z, X), max_x (T, Z, Y)   float32
+    volumes.zarr.lock                  beside the store while a run writes it
+
+Volume chunks are written by the tasks, one frame per chunk, so no two tasks share a chunk.
+The diagnostics arrays are written only by the driver, after a task's volumes are on disk:
+a frame's ``status`` turns non-zero only when its data is complete.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import shutil
+import time
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from volrecon.errors import ConfigError, InputFileError, StoreMismatchError
+from volrecon.io.ome_zarr import IMAGE_PATH, create_ome_image
+
+if TYPE_CHECKING:
+    import zarr
+
+__all__ = [
+    "DIAGNOSTICS",
+    "FORMAT_VERSION",
+    "PROJECTIONS",
+    "STATUS_DONE",
+    "STATUS_FAILED",
+    "STATUS_PENDING",
+    "STORE_ATTRIBUTE",
+    "FrameRecords",
+    "JobStore",
+    "is_job_store",
+    "max_projections",
+]
+
+FORMAT_VERSION = 1
+STORE_ATTRIBUTE = "volrecon"
+STATUS_PENDING, STATUS_DONE, STATUS_FAILED = 0, 1, 2
+STATUS_NAMES = {STATUS_PENDING: "pending", STATUS_DONE: "done", STATUS_FAILED: "failed"}
+#: Diagnostics arrays: name -> (dtype, fill value). ``status`` is written last.
+DIAGNOSTICS: dict[str, tuple[str, Any]] = {
+    "iterations": ("int32", 0),
+    "objective": ("float64", np.nan),
+    "residual": ("float64", np.nan),
+    "converged": ("bool", False),
+    "seconds": ("float32", np.nan),
+    "status": ("uint8", STATUS_PENDING),
+}
+#: Projection arrays: name -> (axis reduced in (Z, Y, X), dimension names).
+PROJECTIONS: dict[str, tuple[int, tuple[str, ...]]] = {
+    "max_z": (0, ("t", "y", "x")),
+    "max_y": (1, ("t", "z", "x")),
+    "max_x": (2, ("t", "z", "y")),
+}
+#: Frames per chunk of the diagnostics arrays (written by one process only).
+DIAGNOSTICS_CHUNK = 4096
+
+
+def max_projections(volume_zyx: np.ndarray) -> dict[str, np.ndarray]:
+    """Maximum-intensity projections of one volume along z, y and x (NaN if any voxel is)."""
+    return {name: np.max(volume_zyx, axis=axis) for name, (axis, _) in PROJECTIONS.items()}
+
+
+@dataclass(frozen=True)
+class FrameRecords:
+    """What a task reports for its frames ``start:stop`` (store frame indices).
+
+    Attributes
+    ----------
+    start, stop : int
+        Frame range.
+    iterations, objective, residual, converged, seconds, status : ndarray of shape (n,)
+        Per-frame diagnostics (see :data:`DIAGNOSTICS`).
+    failures : dict of int to str
+        Reason for each failed frame.
+    """
+
+    start: int
+    stop: int
+    iterations: np.ndarray
+    objective: np.ndarray
+    residual: np.ndarray
+    converged: np.ndarray
+    seconds: np.ndarray
+    status: np.ndarray
+    failures: dict[int, str] = field(default_factory=dict)
+
+
+def is_job_store(path: str | os.PathLike[str]) -> bool:
+    """True when `path` is a zarr group written by a volrecon job (complete or not)."""
+    meta = Path(path) / "zarr.json"
+    try:
+        document = json.loads(meta.read_text(encoding="utf-8"))
+    except (OSError, json.JSONDecodeError):
+        return False
+    return STORE_ATTRIBUTE in document.get("attributes", {})
+
+
+def _now() -> str:
+    return time.strftime("%Y-%m-%dT%H:%M:%S%z")
+
+
+class JobStore:
+    """A job's output store, opened by the one process allowed to write its metadata.
+
+    Create with :meth:`create` or :meth:`open`; the tasks write volume chunks through
+    :class:`volrecon.pipeline.task.FrameWriter`, this object writes the rest.
+
+    Attributes
+    ----------
+    path : Path
+        The store directory.
+    group : zarr.Group
+        Its root group.
+    """
+
+    def __init__(self, path: Path, group: zarr.Group) -> None:
+        self.path = path
+        self.group = group
+        diagnostics = group["diagnostics"]
+        self._diagnostics = {name: diagnostics[name] for name in DIAGNOSTICS}
+
+    # ------------------------------------------------------------------------- lifecycle
+    @classmethod
+    def create(cls, path: str | os.PathLike[str], *, shape_zyx: tuple[int, int, int],
+               n_frames: int, scale_tzyx: tuple[float, float, float, float],
+               metadata: dict[str, Any], projections: bool = False,
+               compression_level: int = 3, depth_start_um: float = 0.0) -> JobStore:
+        """Create a new store (`path` must not exist or be an empty folder).
+
+        The ``volrecon`` attribute is first written with ``state = "creating"`` and set to
+        ``"ready"`` once every array exists, so a store interrupted while being created is
+        recognised and made again on the next run.
+
+        Parameters
+        ----------
+        depth_start_um : float
+            Depth of plane 0 (an OME translation along z when not 0).
+        metadata : dict
+            JSON-able job attributes (settings, fingerprints, provenance) stored under
+            ``attributes["volrecon"]``.
+        """
+        import zarr
+        from zarr.codecs import ZstdCodec
+
+        path = Path(path)
+        if path.is_dir() and not any(path.iterdir()):
+            path.rmdir()
+        attributes = {"format_version": FORMAT_VERSION, "state": "creating", **metadata}
+        group = create_ome_image(path, shape_tzyx=(n_frames, *shape_zyx),
+                                 scale_tzyx=scale_tzyx, name="volumes",
+                                 translation_tzyx=(0.0, depth_start_um, 0.0, 0.0),
+                                 compression_level=compression_level,
+                                 attributes={STORE_ATTRIBUTE: _json(attributes)})
+        chunk = min(n_frames, DIAGNOSTICS_CHUNK)
+        diagnostics = group.create_group("diagnostics", attributes={
+            "failures": {}, "status_codes": {str(k): v for k, v in STATUS_NAMES.items()}})
+        for name, (dtype, fill) in DIAGNOSTICS.items():
+            diagnostics.create_array(name, shape=(n_frames,), chunks=(chunk,), dtype=dtype,
+                                     fill_value=fill, compressors=ZstdCodec(level=3),
+                                     dimension_names=["t"])
+        if projections:
+            group_p = group.create_group("projections")
+            nz, ny, nx = shape_zyx
+            sizes = {"t": n_frames, "z": nz, "y": ny, "x": nx}
+            for name, (_, dims) in PROJECTIONS.items():
+                shape = tuple(sizes[d] for d in dims)
+                group_p.create_array(name, shape=shape, chunks=(1, *shape[1:]),
+                                     dtype="float32", fill_value=np.nan,
+                                     compressors=ZstdCodec(level=compression_level),
+                                     dimension_names=list(dims))
+        attributes["state"] = "ready"
+        group.attrs[STORE_ATTRIBUTE] = _json(attributes)
+        return cls(path, zarr.open_group(zarr.storage.LocalStore(path), mode="r+"))
+
+    @classmethod
+    def open(cls, path: str | os.PathLike[str], *, mode: str = "r+") -> JobStore:
+        """Open an existing, completely created store.
+
+        Raises
+        ------
+        InputFileError
+            If `path` is not a volrecon output store or its creation was interrupted.
+        """
+        import zarr
+
+        path = Path(path)
+        if not is_job_store(path):
+            raise InputFileError(
+                f"{path}: not a volrecon output store (no '{STORE_ATTRIBUTE}' attribute); give "
+                "the [output] path of a job"
+            )
+        group = zarr.open_group(zarr.storage.LocalStore(path, read_only=mode == "r"),
+                                mode=mode)
+        attributes = group.attrs[STORE_ATTRIBUTE]
+        if attributes.get("format_version") != FORMAT_VERSION:
+            raise InputFileError(
+                f"{path}: output store format {attributes.get('format_version')} is not "
+                f"{FORMAT_VERSION}, the one this volrecon writes; use a matching volrecon"
+            )
+        if attributes.get("state") != "ready":
+            raise InputFileError(
+                f"{path}: the store's creation was interrupted; run the job again to create it"
+            )
+        return cls(path, group)
+
+    @staticmethod
+    def wipe(path: str | os.PathLike[str]) -> None:
+        """Delete a volrecon output store (refuses any other folder).
+
+        Raises
+        ------
+        ConfigError
+            If `path` exists and is neither an empty folder nor a volrecon output store.
+        """
+        path = Path(path)
+        if not path.exists():
+            return
+        if path.is_dir() and not any(path.iterdir()):
+            return
+        if not is_job_store(path):
+            raise ConfigError(
+                f"{path}: exists and is not a volrecon output store; choose another "
+                "[output] path (volrecon only ever deletes its own stores)"
+            )
+        shutil.rmtree(path)
+
+    # ------------------------------------------------------------------------ attributes
+    @property
+    def attributes(self) -> dict[str, Any]:
+        """The ``volrecon`` group attribute (settings, fingerprints, provenance)."""
+        return dict(self.group.attrs[STORE_ATTRIBUTE])
+
+    def update_attributes(self, **changes: Any) -> None:
+        """Replace top-level entries of the ``volrecon`` attribute (atomic file write)."""
+        attributes = self.attributes
+        attributes.update(changes)
+        self.group.attrs[STORE_ATTRIBUTE] = _json(attributes)
+
+    @property
+    def n_frames(self) -> int:
+        """Frames T of the image."""
+        return int(self.image.shape[0])
+
+    @property
+    def image(self) -> zarr.Array:
+        """The ``(T, Z, Y, X)`` image array."""
+        return self.group[IMAGE_PATH]  # type: ignore[return-value]
+
+    def check_settings(self, comparable: dict[str, Any], *, job_source: str) -> None:
+        """Refuse to resume with other settings than the store's.
+
+        Raises
+        ------
+        StoreMismatchError
+            Naming the first setting that differs, both values and the two ways out.
+        """
+        stored = self.attributes.get("comparable_settings", {})
+        difference = _first_difference(stored, comparable)
+        if difference is None:
+            return
+        key, old, new = difference
+        if key.endswith(".path") or key in ("video.dark", "video.flat"):
+            what = (f"the file behind '{key}' is not the one the store was made from "
+                    f"(fingerprint {_short(old)} in the store, {_short(new)} now)")
+            fix = "point it at the original file to resume"
+        else:
+            what = f"setting '{key}' is {_show(old)} in the store but {_show(new)} in {job_source}"
+            fix = f"set {key.rsplit('.', 1)[-1]} = {_show(old)} to resume" if old is not None \
+                else f"remove '{key}' to resume"
+        raise StoreMismatchError(
+            f"{self.path}: {what}; {fix}, or re-run with --restart to start over"
+        )
+
+    # ------------------------------------------------------------------------ frames
+    def status(self) -> np.ndarray:
+        """Per-frame status codes ``(T,)`` (0 pending, 1 done, 2 failed)."""
+        return np.asarray(self._diagnostics["status"][:])
+
+    def failures(self) -> dict[int, str]:
+        """Reason of each failed frame."""
+        raw = self.group["diagnostics"].attrs.get("failures", {})
+        return {int(k): str(v) for k, v in raw.items()}
+
+    def record(self, records: FrameRecords) -> None:
+        """Write a finished task's diagnostics; ``status`` last, marking its frames done.
+
+        Call only after the task's volumes are written (the task returns after writing).
+        """
+        region = slice(records.start, records.stop)
+        for name in DIAGNOSTICS:
+            if name != "status":
+                self._diagnostics[name][region] = getattr(records, name)
+        failures = self.failures()
+        for t in range(records.start, records.stop):
+            failures.pop(t, None)
+        if records.failures or len(failures) != len(self.failures()):
+            failures.update(records.failures)
+            self.group["diagnostics"].attrs["failures"] = {
+                str(k): v for k, v in sorted(failures.items())}
+        self._diagnostics["status"][region] = records.status
+
+    def diagnostics(self) -> dict[str, np.ndarray]:
+        """All per-frame diagnostics as arrays ``(T,)``."""
+        return {name: np.asarray(array[:]) for name, array in self._diagnostics.items()}
+
+    def remove_partial_files(self) -> int:
+        """Delete ``*.partial`` files left by writers killed mid-write; returns how many."""
+        removed = 0
+        for partial in self.path.rglob("*.partial"):
+            try:
+                partial.unlink()
+                removed += 1
+            except FileNotFoundError:
+                pass
+        return removed
+
+
+# ------------------------------------------------------------------------------- helpers
+def _json(value: Any) -> Any:
+    """A JSON-safe deep copy (tuples become lists, numpy scalars plain numbers)."""
+    return json.loads(json.dumps(value, default=_json_default))
+
+
+def _json_default(value: Any) -> Any:
+    if isinstance(value, np.generic):
+        return value.item()
+    if isinstance(value, os.PathLike):
+        return os.fspath(value)
+    raise TypeError(f"{type(value).__name__} is not JSON-able")
+
+
+def _first_difference(old: Any, new: Any, prefix: str = "") -> tuple[str, Any, Any] | None:
+    old, new = _json(old), _json(new)
+    if isinstance(old, Mapping) and isinstance(new, Mapping):
+        for key in sorted(set(old) | set(new)):
+            where = f"{prefix}.{key}" if prefix else str(key)
+            if key not in old:
+                return (where, None, new[key])
+            if key not in new:
+                return (where, old[key], None)
+            found = _first_difference(old[key], new[key], where)
+            if found is not None:
+                return found
+        return None
+    if isinstance(old, float) and isinstance(new, float) and math.isnan(old) and math.isnan(new):
+        return None
+    return None if old == new else (prefix, old, new)
+
+
+def _show(value: Any) -> str:
+    if isinstance(value, str):
+        return json.dumps(value)
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if value is None:
+        return "(not set)"
+    return json.dumps(value)
+
+
+def _short(fingerprint: Any) -> str:
+    text = str(fingerprint)
+    return text if len(text) <= 24 else text[:24] + "…"

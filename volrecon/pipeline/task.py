@@ -1,0 +1,193 @@
+"""One task of a job: read a few frames, reconstruct them in order, write their volumes.
+
+Everything a task needs travels in two small frozen objects that pickle (a
+:class:`TaskContext` shared by all tasks and a :class:`TaskSpec` per task), so the same
+function runs in a thread, a process or on a dask.distributed worker. The PSF model is loaded
+from its store inside the worker, once per process.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+from dataclasses import dataclass
+from functools import lru_cache
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from volrecon.errors import VolreconError
+from volrecon.io.ome_zarr import IMAGE_PATH
+from volrecon.pipeline.store import (
+    PROJECTIONS,
+    STATUS_DONE,
+    STATUS_FAILED,
+    FrameRecords,
+    max_projections,
+)
+
+if TYPE_CHECKING:
+    from volrecon.io.correct import FrameCorrection
+    from volrecon.io.frames import FrameSource
+    from volrecon.models.base import PSFModel
+    from volrecon.pipeline.config import SolverSettings
+
+__all__ = ["TaskContext", "TaskSpec", "run_task"]
+
+logger = logging.getLogger(__name__)
+
+
+@dataclass(frozen=True)
+class TaskSpec:
+    """Frames ``start:stop`` of the store, made of whole warm-start chains.
+
+    Attributes
+    ----------
+    index : int
+        Task number (for logs).
+    start, stop : int
+        Store frame range (store frame ``t`` is video frame ``first_frame + t``).
+    """
+
+    index: int
+    start: int
+    stop: int
+
+
+@dataclass(frozen=True, eq=False)
+class TaskContext:
+    """What every task of a job shares.
+
+    Attributes
+    ----------
+    source : FrameSource
+        Raw video reader (picklable).
+    first_frame : int
+        Video frame of store frame 0.
+    correction : FrameCorrection
+        Dark, flat and binning.
+    model_path : str
+        PSF model store; each process loads it once.
+    model_fingerprint : str
+        Its fingerprint (the cache key, so a changed store is never served from cache).
+    solver : SolverSettings
+        Arguments of the reconstruction.
+    device : str
+        "cpu" or "gpu".
+    fft_threads : int or None
+        FFT threads per task; None: one (a dask.distributed worker with unknown sharing).
+    store_path : str
+        Output store.
+    projections : bool
+        Write max projections.
+    """
+
+    source: FrameSource
+    first_frame: int
+    correction: FrameCorrection
+    model_path: str
+    model_fingerprint: str
+    solver: SolverSettings
+    device: str
+    fft_threads: int | None
+    store_path: str
+    projections: bool
+
+
+@lru_cache(maxsize=4)
+def _load_model(path: str, fingerprint: str, device: str, threads: int) -> PSFModel:
+    """The model at `path` on `device`, loaded once per process and cached by fingerprint."""
+    from volrecon.models.base import PSFModel
+
+    del fingerprint  # part of the cache key only
+    return PSFModel.load(path).on_device(device, threads=threads)
+
+
+def run_task(context: TaskContext, spec: TaskSpec) -> FrameRecords:
+    """Reconstruct and write frames ``spec.start:spec.stop``; return their diagnostics.
+
+    Each chain of ``context.solver.chain_frames`` frames starts from scratch at its first
+    frame and warm-starts every later frame from the previous one, so a frame's result depends
+    only on its chain, never on task size, scheduler or interruptions. A frame that fails (its
+    input is not finite, the solver refuses it, the result is not finite or its residual
+    exceeds ``max_residual``) is written as NaN, recorded with its reason, and the chain
+    restarts at the next frame.
+
+    Raises
+    ------
+    InputFileError
+        If the raw frames cannot be read.
+    """
+    import zarr
+
+    solver = context.solver
+    threads = context.fft_threads or 1
+    model = _load_model(context.model_path, context.model_fingerprint, context.device, threads)
+    group = zarr.open_group(zarr.storage.LocalStore(context.store_path), mode="r+")
+    image = group[IMAGE_PATH]
+    projections = ({name: group[f"projections/{name}"] for name in PROJECTIONS}
+                   if context.projections else {})
+    n = spec.stop - spec.start
+    records: dict[str, np.ndarray] = {
+        "iterations": np.zeros(n, np.int32), "objective": np.full(n, np.nan),
+        "residual": np.full(n, np.nan), "converged": np.zeros(n, bool),
+        "seconds": np.full(n, np.nan, np.float32), "status": np.zeros(n, np.uint8)}
+    failures: dict[int, str] = {}
+    chain = solver.chain_frames
+    state = None
+    for chain_start in range(spec.start, spec.stop, chain):
+        chain_stop = min(chain_start + chain, spec.stop)
+        raw = context.source.read(context.first_frame + chain_start,
+                                  context.first_frame + chain_stop)
+        frames = context.correction.apply(raw)
+        del raw
+        state = None
+        for offset, frame in enumerate(frames):
+            t = chain_start + offset
+            i = t - spec.start
+            volume, info, reason = _solve(frame, model, solver, state, threads)
+            if reason is None:
+                state = info.state if solver.warm_start else None
+                records["status"][i] = STATUS_DONE
+            else:
+                state = None
+                volume = np.full(model.shape_in, np.nan, dtype=np.float32)
+                records["status"][i] = STATUS_FAILED
+                failures[t] = reason
+                logger.warning("frame %d (video frame %d): %s", t, context.first_frame + t,
+                               reason)
+            if info is not None:
+                records["iterations"][i] = info.iterations
+                records["objective"][i] = info.objective
+                records["residual"][i] = info.residual
+                records["converged"][i] = info.converged
+                records["seconds"][i] = info.seconds
+            volume = np.asarray(volume, dtype=np.float32)
+            image[t] = volume
+            if projections:
+                for name, projected in max_projections(volume).items():
+                    projections[name][t] = projected
+    return FrameRecords(start=spec.start, stop=spec.stop, failures=failures, **records)
+
+
+def _solve(frame: np.ndarray, model: PSFModel, solver: SolverSettings, state: Any,
+           threads: int) -> tuple[Any, Any, str | None]:
+    """Reconstruct one frame: (volume, info, None) or (None, info or None, failure reason)."""
+    from volrecon.solvers import reconstruct
+
+    if not np.all(np.isfinite(frame)):
+        return None, None, "the corrected frame contains NaN or Inf pixels"
+    try:
+        volume, info = reconstruct(
+            frame, model, method=solver.method, iterations=solver.iterations, tv=solver.tv,
+            l1=solver.l1, tol=solver.tol, tv_z_weight=solver.tv_z_weight, init=state,
+            device=model.backend.device, threads=threads, return_info=True)
+    except (VolreconError, ArithmeticError, np.linalg.LinAlgError) as exc:
+        return None, None, f"the solver refused the frame: {exc}"
+    volume = model.backend.to_numpy(volume)
+    if not (np.all(np.isfinite(volume)) and math.isfinite(info.objective)):
+        return None, info, "diverged: the volume or objective is NaN or Inf"
+    if math.isfinite(info.residual) and info.residual > solver.max_residual:
+        return None, info, (f"diverged: relative residual {info.residual:.3g} exceeds "
+                            f"max_residual = {solver.max_residual:g}")
+    return volume, info, None

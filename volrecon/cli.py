@@ -44,8 +44,51 @@ def _run_bench(args: argparse.Namespace) -> int:
     return bench_main(argv)
 
 
+def _add_calibrate(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    p = sub.add_parser(
+        "calibrate", help="turn a bead-scan TIFF into a PSF model and a report",
+        description="Clean (offset, hot pixels, background, binning), register and compress "
+        "a bead scan into a PSF model store; the report goes next to it (NAME.report/).")
+    p.add_argument("stack", metavar="STACK.tif",
+                   help="multi-page TIFF (Z, Y, X), or (K, Z, Y, X) with --positions")
+    p.add_argument("--depth-step", type=float, required=True, metavar="UM",
+                   help="depth between planes, micrometres")
+    p.add_argument("--pixel-size", type=float, required=True, metavar="UM",
+                   help="pixel pitch in the sample plane (before --bin), micrometres")
+    p.add_argument("--depth-start", type=float, default=0.0, metavar="UM",
+                   help="depth of the first plane, micrometres (default 0)")
+    p.add_argument("--dark", metavar="F.tif", help="dark frame or stack of dark frames "
+                   "(default: offset estimated from the image border)")
+    p.add_argument("--wavelength", type=float, metavar="NM", help="emission wavelength, nm")
+    p.add_argument("--bin", type=int, default=1, metavar="N", help="lateral binning (default 1)")
+    p.add_argument("--crop", metavar="Y0:Y1,X0:X1", help="window of the raw image to keep")
+    p.add_argument("--rank", metavar="N|auto", help="depth rank of the model: N kernels, or "
+                   "'auto' by --energy (default: full rank)")
+    p.add_argument("--energy", type=float, default=0.999, metavar="F",
+                   help="energy fraction kept by --rank auto (default 0.999)")
+    p.add_argument("--positions", metavar="P.csv", help="CSV of y_px,x_px per field position "
+                   "(for a (K, Z, Y, X) scan): field-varying model")
+    p.add_argument("--out", required=True, metavar="MODEL", help="model store to write")
+    p.set_defaults(run=_run_calibrate)
+
+
+def _run_calibrate(args: argparse.Namespace) -> int:
+    from volrecon.calibrate import calibrate_file, parse_crop, parse_rank
+
+    result = calibrate_file(
+        args.stack, args.out, depth_step_um=args.depth_step, pixel_size_um=args.pixel_size,
+        depth_start_um=args.depth_start, dark_path=args.dark, positions_path=args.positions,
+        wavelength_nm=args.wavelength, bin_factor=args.bin,
+        crop_yx=None if args.crop is None else parse_crop(args.crop),
+        rank=parse_rank(args.rank), energy=args.energy)
+    print(result.report.summary_text())
+    print(f"model written to {args.out}")
+    return 0
+
+
 _COMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [  # type: ignore[type-arg]
     _add_bench,
+    _add_calibrate,
 ]
 
 

@@ -86,9 +86,89 @@ def _run_calibrate(args: argparse.Namespace) -> int:
     return 0
 
 
+def _add_run(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    p = sub.add_parser(
+        "run", help="reconstruct a video into a 4-D OME-Zarr store (resumable)",
+        description="Run the job described by a TOML file. Running it again continues where "
+        "it stopped; Ctrl-C stops cleanly. See workflows/README.md.")
+    p.add_argument("job", metavar="JOB.toml", help="job file (see schemas/job.schema.json)")
+    p.add_argument("--restart", action="store_true",
+                   help="delete the job's existing store and start over (after checking the job)")
+    p.add_argument("--no-progress", action="store_true", help="do not draw the progress bar")
+    p.set_defaults(run=_run_run)
+
+
+def _run_run(args: argparse.Namespace) -> int:
+    import signal
+
+    from volrecon.pipeline import format_status, progress_bar, run_job, store_status
+    from volrecon.pipeline.config import load_job
+
+    job = load_job(args.job)
+
+    def stop(signum: int, frame: object) -> None:
+        raise KeyboardInterrupt
+
+    previous = signal.signal(signal.SIGTERM, stop)  # batch systems stop jobs with SIGTERM
+    try:
+        with progress_bar(disable=True if args.no_progress else None) as progress:
+            result = run_job(job, restart=args.restart, progress=progress)
+    except KeyboardInterrupt:
+        done = format_status(store_status(job.output_path))[0] if job.output_path.exists() \
+            else "0"
+        print(f"volrecon run: interrupted with {done} frames done; run the same command again "
+              "to continue", file=sys.stderr)
+        return 130
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+    rate = result.computed / result.seconds if result.seconds > 0 else 0.0
+    print(f"{result.store_path}: {result.done}/{result.total} frames done, {result.failed} "
+          f"failed; this run computed {result.computed} frames in {result.seconds:.1f} s "
+          f"({rate:.3g} frames/s)")
+    return 0
+
+
+def _add_status(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    p = sub.add_parser(
+        "status", help="show how far a job's store is (first line: <done>/<total>)",
+        description="Print <done>/<total> frames on the first line, then the state, failed "
+        "frames, throughput and ETA. Safe while a run is writing the store.")
+    p.add_argument("store", metavar="OUT", help="the job's output store")
+    p.set_defaults(run=_run_status)
+
+
+def _run_status(args: argparse.Namespace) -> int:
+    from volrecon.pipeline import format_status, store_status
+
+    print("\n".join(format_status(store_status(args.store))))
+    return 0
+
+
+def _add_export(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    p = sub.add_parser("export", help="write store volumes as an ImageJ hyperstack TIFF")
+    p.add_argument("store", metavar="OUT", help="the job's output store")
+    p.add_argument("--tiff", required=True, metavar="F.tif", help="TIFF file to write")
+    p.add_argument("--frames", metavar="a:b", default=None,
+                   help="store frames a to b-1 (default all)")
+    p.add_argument("--projection", choices=("max",), default=None,
+                   help="export the maximum projection along z instead of the volumes")
+    p.set_defaults(run=_run_export)
+
+
+def _run_export(args: argparse.Namespace) -> int:
+    from volrecon.pipeline import export_tiff
+
+    out = export_tiff(args.store, args.tiff, frames=args.frames, projection=args.projection)
+    print(out)
+    return 0
+
+
 _COMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [  # type: ignore[type-arg]
     _add_bench,
     _add_calibrate,
+    _add_run,
+    _add_status,
+    _add_export,
 ]
 
 

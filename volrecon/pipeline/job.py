@@ -88,6 +88,8 @@ class JobProgress:
     ----------
     done : int
         Frames finished (done or failed), this run and earlier ones.
+    done_at_start : int
+        Frames that were finished when this run started.
     total : int
         Frames of the job.
     failed : int
@@ -103,6 +105,7 @@ class JobProgress:
     """
 
     done: int
+    done_at_start: int
     total: int
     failed: int
     computed: int
@@ -361,7 +364,8 @@ def _run(prepared: PreparedJob, store: JobStore, *,
             elapsed = time.perf_counter() - compute_started
             rate = counts["computed"] / elapsed if elapsed > 0 else 0.0
             eta = (total - counts["done"]) / rate if rate > 0 else float("inf")
-            progress(JobProgress(done=counts["done"], total=total, failed=counts["failed"],
+            progress(JobProgress(done=counts["done"], done_at_start=done_before, total=total,
+                                 failed=counts["failed"],
                                  computed=counts["computed"], elapsed_s=elapsed,
                                  frames_per_second=rate, eta_s=eta))
 

@@ -21,7 +21,7 @@ from volrecon.pipeline.store import (
     is_job_store,
 )
 
-__all__ = ["StoreStatus", "store_status"]
+__all__ = ["StoreStatus", "format_status", "store_status"]
 
 
 @dataclass(frozen=True)
@@ -115,3 +115,38 @@ def store_status(path: str | os.PathLike[str]) -> StoreStatus:
     return StoreStatus(path=path, total=len(status), done=done, failed=failed,
                        failures=store.failures(), running=running, holder=holder,
                        frames_per_second=rate, eta_s=eta, runs=runs)
+
+
+def format_status(status: StoreStatus, *, max_failures: int = 20) -> list[str]:
+    """Lines for ``volrecon status``: first ``<done>/<total>``, then state, failures, speed."""
+    lines = [f"{status.done}/{status.total}"]
+    holder = status.holder or {}
+    if status.running:
+        lines.append(f"state: running (pid {holder.get('pid')} on {holder.get('host')}, "
+                     f"since {holder.get('started')})")
+    elif status.state == "complete":
+        lines.append("state: complete")
+    else:
+        lines.append(f"state: stopped, {status.pending} frames pending; run the job again to "
+                     "continue")
+    lines.append(f"failed: {status.failed} frames")
+    for t, reason in list(sorted(status.failures.items()))[:max_failures]:
+        lines.append(f"  frame {t}: {reason}")
+    if len(status.failures) > max_failures:
+        lines.append(f"  … and {len(status.failures) - max_failures} more")
+    if np.isfinite(status.frames_per_second):
+        which = "current run" if status.running else "last run"
+        lines.append(f"throughput: {status.frames_per_second:.3g} frames/s ({which})")
+    if status.running and np.isfinite(status.eta_s):
+        lines.append(f"eta: {_duration(status.eta_s)}")
+    return lines
+
+
+def _duration(seconds: float) -> str:
+    hours, rest = divmod(round(seconds), 3600)
+    minutes, secs = divmod(rest, 60)
+    if hours:
+        return f"{hours} h {minutes:02d} min"
+    if minutes:
+        return f"{minutes} min {secs:02d} s"
+    return f"{secs} s"

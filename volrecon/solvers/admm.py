@@ -211,7 +211,7 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
         # y-update (isotropic group shrinkage)
         if p.use_tv:
             xp.add(grad_v, beta, out=y)
-            xp.einsum("i...,i...->...", y, y, out=y_norm)
+            _sum_of_squares(xp, y, out=y_norm)
             xp.sqrt(y_norm, out=y_norm)
             kappa = dt.type(tv / mu[1])
             xp.maximum(y_norm, kappa, out=y_norm)
@@ -310,6 +310,14 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
     # The returned volume is the feasible split w (≥ 0, zero off the field).
     volume = xp.ascontiguousarray(w[:, :ny, :nx])
     return volume, it, converged, state, history
+
+
+def _sum_of_squares(xp: Any, y: Array, *, out: Array) -> None:
+    """``out = Σ_c y[c]²`` in one pass where the backend allows it."""
+    if xp is np:
+        np.einsum("i...,i...->...", y, y, out=out)
+    else:
+        out[...] = (y * y).sum(axis=0)
 
 
 def _rescale_dual(k: int, factor: float, alpha: Array, beta: Array | None, gamma: Array) -> None:

@@ -107,9 +107,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser.add_argument("--threads", type=int, default=None)
     parser.add_argument("--json", action="store_true")
     args = parser.parse_args(argv)
-    sizes = [tuple(s) for s in args.size] if args.size else [(16, 128, 128)]
+    sizes: list[tuple[int, int, int]] = (
+        [(int(z), int(y), int(x)) for z, y, x in args.size] if args.size else [(16, 128, 128)])
     get_backend(args.device, threads=args.threads)  # fail early with a clear message
-    records = run(sizes, device=args.device, threads=args.threads)  # type: ignore[arg-type]
+    records = run(sizes, device=args.device, threads=args.threads)
     if args.json:
         json.dump(records, sys.stdout, indent=1)
         sys.stdout.write("\n")

@@ -76,8 +76,9 @@ class PSFModel(ABC):
 
     def __init__(self, shape_in: tuple[int, int, int], dtype: Any, geometry: Geometry,
                  backend: Backend) -> None:
-        self.shape_in = tuple(int(n) for n in shape_in)
-        self.shape_out = self.shape_in[1:]
+        nz, ny, nx = (int(n) for n in shape_in)
+        self.shape_in: tuple[int, int, int] = (nz, ny, nx)
+        self.shape_out: tuple[int, int] = (ny, nx)
         self.dtype = np.dtype(dtype)
         if self.dtype not in (np.float32, np.float64):
             raise ConfigError(f"model dtype must be float32 or float64; got {self.dtype}")
@@ -154,7 +155,9 @@ class PSFModel(ABC):
         """Lateral size of the zero-padded FFT grid, ``next_fast_len(2N - 1)`` per axis."""
         import scipy.fft
 
-        return tuple(scipy.fft.next_fast_len(2 * n - 1, real=True) for n in self.shape_out)  # type: ignore[return-value]
+        ny, nx = self.shape_out
+        return (scipy.fft.next_fast_len(2 * ny - 1, real=True),
+                scipy.fft.next_fast_len(2 * nx - 1, real=True))
 
     def transfer_functions(self) -> Array | None:
         """Per-plane spectra ``Ĥ`` (Z, Py, Px//2+1) on the padded grid, or None.

@@ -30,14 +30,15 @@ def model_kinds() -> dict[str, type[PSFModel]]:
     from volrecon.models.depth_convolution import DepthConvolutionPSF
 
     kinds: dict[str, type[PSFModel]] = {DepthConvolutionPSF.kind: DepthConvolutionPSF}
-    for cls in _subclasses(PSFModel):
-        if getattr(cls, "kind", None):
-            kinds.setdefault(cls.kind, cls)
+    for cls in _subclasses(PSFModel):  # type: ignore[type-abstract]
+        kind = getattr(cls, "kind", None)
+        if isinstance(kind, str):
+            kinds.setdefault(kind, cls)
     return kinds
 
 
-def _subclasses(cls: type) -> list[type]:
-    found = []
+def _subclasses(cls: type[PSFModel]) -> list[type[PSFModel]]:
+    found: list[type[PSFModel]] = []
     for sub in cls.__subclasses__():
         found.append(sub)
         found.extend(_subclasses(sub))

@@ -81,6 +81,8 @@ class _Problem:
         self.use_tv = tv > 0
         self.z_weight = tv_z_weight
         spectra = model.transfer_functions()
+        if spectra is None:
+            raise ValueError("ADMM needs a model with transfer functions")
         a = spectra.conj()
         if self.use_tv:
             # Orthonormal DCT-II along depth as a Z×Z matrix: for the Z of PSF stacks (≤ 64)
@@ -163,7 +165,7 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
     v = xp.zeros((nz, *shape), dtype=dt)
     alpha = xp.zeros(shape, dtype=dt)
     gamma = xp.zeros((nz, *shape), dtype=dt)
-    beta = xp.zeros((3, nz, *shape), dtype=dt) if p.use_tv else None
+    beta: Any = xp.zeros((3, nz, *shape), dtype=dt) if p.use_tv else None
     if isinstance(init, SolverState):
         v[...] = init.arrays["v"]
         alpha[...] = init.arrays["alpha"]
@@ -184,11 +186,12 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
     mv = be.irfft2((v_hat * p.a_t_conj if not p.use_tv else p.depth_transform(v_hat) * p.a_t_conj
                     ).sum(axis=0), shape).astype(dt, copy=False)
     del v_hat
-    grad_v = gradient(v, tv_z_weight) if p.use_tv else None
-    y = xp.empty_like(beta) if p.use_tv else None
-    y_minus_beta = xp.empty_like(beta) if p.use_tv else None
-    y_norm = xp.empty((nz, *shape), dtype=dt) if p.use_tv else None
-    tv_rhs = xp.empty((nz, *shape), dtype=dt) if p.use_tv else None
+    grad_v: Any = gradient(v, tv_z_weight) if p.use_tv else None
+    y: Any = xp.empty_like(beta) if p.use_tv else None
+    y_minus_beta: Any = xp.empty_like(beta) if p.use_tv else None
+    y_norm: Any = xp.empty((nz, *shape), dtype=dt) if p.use_tv else None
+    tv_rhs: Any = xp.empty((nz, *shape), dtype=dt) if p.use_tv else None
+    y_old: Any = None
     x_denominator = xp.full(shape, 1.0 / mu[0], dtype=dt)
     x_denominator[sensor] = 1.0 / (1.0 + mu[0])
     x = xp.empty(shape, dtype=dt)

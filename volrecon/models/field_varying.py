@@ -56,7 +56,11 @@ def interpolation_weights(positions_yx: Any, shape_yx: tuple[int, int]) -> np.nd
     >>> w[1, 0].tolist()
     [0.0, 0.25, 0.5, 0.75, 1.0]
     """
-    pos = np.asarray(positions_yx, dtype=np.float64)
+    try:
+        pos = np.asarray(positions_yx, dtype=np.float64)
+    except (ValueError, TypeError) as exc:
+        raise ShapeError(f"positions_yx must be K rows of two numbers (y, x); got "
+                         f"{positions_yx!r}") from exc
     if pos.ndim != 2 or pos.shape[1] != 2 or pos.shape[0] < 1:
         raise ShapeError(f"positions_yx must have shape (K, 2) with K >= 1; got {pos.shape}")
     if not np.isfinite(pos).all():

@@ -23,9 +23,10 @@ from volrecon.errors import ConfigError, ShapeError, VolreconWarning
 from volrecon.simulate.masks import PhaseMask, circular_aperture
 from volrecon.simulate.propagation import _apply_transfer, angular_spectrum_transfer
 from volrecon.simulate.sources import (
+    _pupil_field,
     _pupil_path_um,
     _spherical_path_um,
-    pupil_field,
+    collection_efficiency,
     spherical_wave,
 )
 
@@ -271,7 +272,13 @@ def lensless_psf_stack(mask: PhaseMask, depths_um: Sequence[float] | FloatArray,
                             what=f"lensless_psf_stack depth {z:g} um")
             field = spherical_wave(mask.shape, distance_um=float(z), wavelength_um=wave,
                                    pixel_size_um=dx, refractive_index=refractive_index)
-            out[i] += np.float32(weight) * _record(field * transmit, transfer, dx, factor, workers)
+            # A partly covered edge pixel passes the fraction f of the power but holds the
+            # amplitude f (right for diffraction): rescale to the power the aperture passes.
+            incident = np.abs(field).astype(np.float64) ** 2 * mask.amplitude**2
+            held = float(np.sum(incident * aperture**2))
+            scale = math.sqrt(float(np.sum(incident * aperture)) / held) if held > 0 else 1.0
+            field *= transmit * np.float32(scale)
+            out[i] += np.float32(weight) * _record(field, transfer, dx, factor, workers)
     return PSFStack(out, depths, dx * factor, None, waves, weights)
 
 
@@ -329,29 +336,30 @@ def pupil_psf_stack(mask: PhaseMask, depths_um: Sequence[float] | FloatArray, *,
     depths = _depths(depths_um)
     waves, weights = _wavelengths(wavelength_um, wavelength_weights)
     factor = _bin_factor(mask.shape, bin_factor)
+    collection_efficiency(numerical_aperture, immersion_index)  # refuses NA >= n early
     workers = workers or available_cores()
     dx = mask.pixel_size_um
     grid = _padded(mask.shape)
     out = np.zeros((depths.size, mask.shape[0] // factor, mask.shape[1] // factor), np.float32)
     pupil = circular_aperture(mask.shape, radius_um=pupil_radius_um, pixel_size_um=dx)
-    for depth in (depths[0], depths[-1]):
-        path = _pupil_path_um(mask.shape, depth_um=float(depth),
-                              numerical_aperture=numerical_aperture,
-                              pupil_radius_um=pupil_radius_um, pixel_size_um=dx,
-                              immersion_index=immersion_index,
-                              lateral_offset_yx_um=lateral_offset_yx_um)
-        _check_sampling(path + mask.optical_path_um, pupil * mask.amplitude, pixel_size_um=dx,
-                        wavelength_um=min(waves), what=f"pupil_psf_stack depth {depth:g} um")
+    paths = np.stack([
+        _pupil_path_um(mask.shape, depth_um=float(depth), numerical_aperture=numerical_aperture,
+                       pupil_radius_um=pupil_radius_um, pixel_size_um=dx,
+                       immersion_index=immersion_index,
+                       lateral_offset_yx_um=lateral_offset_yx_um)
+        for depth in depths])
+    # The path is linear in depth, so its steepest slope is at the first or the last depth.
+    for i in (0, depths.size - 1):
+        _check_sampling(paths[i] + mask.optical_path_um, pupil * mask.amplitude,
+                        pixel_size_um=dx, wavelength_um=min(waves),
+                        what=f"pupil_psf_stack depth {depths[i]:g} um")
+    efficiency = collection_efficiency(numerical_aperture, immersion_index)
     for wave, weight in zip(waves, weights, strict=True):
         transmit = mask.transmittance(wave)
         transfer = angular_spectrum_transfer(grid, pupil_to_sensor_um, wavelength_um=wave,
                                              pixel_size_um=dx)
-        fields = np.stack([
-            pupil_field(mask.shape, depth_um=float(depth), numerical_aperture=numerical_aperture,
-                        pupil_radius_um=pupil_radius_um, wavelength_um=wave, pixel_size_um=dx,
-                        immersion_index=immersion_index,
-                        lateral_offset_yx_um=lateral_offset_yx_um)
-            for depth in depths])
+        fields = np.stack([_pupil_field(pupil, path, wavelength_um=wave, efficiency=efficiency,
+                                        pixel_size_um=dx) for path in paths])
         fields *= transmit
         out += np.float32(weight) * _record(fields, transfer, dx, factor, workers)
     magnification = pupil_to_sensor_um * numerical_aperture / pupil_radius_um

@@ -122,7 +122,14 @@ def pupil_field(shape_yx: tuple[int, int], *, depth_um: float, numerical_apertur
     path = _pupil_path_um(shape_yx, depth_um=depth_um, numerical_aperture=na,
                           pupil_radius_um=radius, pixel_size_um=pixel_size_um,
                           immersion_index=n, lateral_offset_yx_um=lateral_offset_yx_um)
-    phase = np.mod(k * path, 2.0 * np.pi)
+    return _pupil_field(aperture, path, wavelength_um=2.0 * np.pi / k, efficiency=efficiency,
+                        pixel_size_um=pixel_size_um)
+
+
+def _pupil_field(aperture: FloatArray, path_um: FloatArray, *, wavelength_um: float,
+                 efficiency: float, pixel_size_um: float) -> ComplexArray:
+    """Pupil field from its aperture and optical path, carrying `efficiency` of unit power."""
+    phase = np.mod((2.0 * np.pi / wavelength_um) * path_um, 2.0 * np.pi)
     power = float(np.sum(aperture.astype(np.float64) ** 2)) * pixel_size_um**2
     scale = math.sqrt(efficiency / power)
     field: ComplexArray = (scale * aperture * np.exp(1j * phase)).astype(np.complex64)

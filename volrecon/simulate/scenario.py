@@ -216,7 +216,8 @@ def write_hydrogel_scenario(directory: str | os.PathLike[str], *, rng: RNGLike =
     # The scene, in voxels: um/s -> voxels per frame.
     voxel_um = np.array([depth_step_um, pixel, pixel])
     drift = tuple(np.asarray(drift_zyx_um_per_s) * frame_interval_s / voxel_um)
-    margin = (0.5, 10.0 + abs(drift[1]) * n_frames, 10.0 + abs(drift[2]) * n_frames)
+    margin = (min(0.5, (n_planes - 1) / 2.0), 10.0 + abs(float(drift[1])) * n_frames,
+              10.0 + abs(float(drift[2])) * n_frames)
     beads = bead_scene(shape, n_frames, n_beads=n_beads, photons=bead_photons,
                        margin_voxels=margin, drift_zyx_per_frame=drift,
                        wobble_voxels=(0.1, 0.3, 0.3), wobble_period_frames=25.0,

@@ -9,6 +9,7 @@ import pytest
 import tifffile
 from skimage.registration import phase_cross_correlation
 
+from volrecon import PSFModel
 from volrecon.errors import ConfigError, InputFileError, ShapeError
 from volrecon.simulate import (
     Camera,
@@ -88,8 +89,6 @@ def test_video_mean_matches_the_camera_model_of_the_truth(tmp_path):
     # Normalised residuals have unit variance (Poisson + Gaussian model is complete).
     assert np.var((video - expected) / np.sqrt(variance)) == pytest.approx(1.0, abs=0.03)
     # The noise-free photons are the model applied to the truth volumes (files agree).
-    from volrecon import PSFModel
-
     model = PSFModel.from_stack(np.load(s.files["truth_psf"]), s.depth_step_um, s.pixel_size_um)
     again = expected_photons(np.load(s.files["truth_volumes"]), model,
                              background_photons=s.background_photons)
@@ -145,8 +144,6 @@ def test_read_scenario_errors(tmp_path):
 
 
 def test_recording_functions_and_errors(rng):
-    from volrecon import PSFModel
-
     psf = np.zeros((2, 16, 16), np.float32)
     psf[:, 8, 8] = 0.5
     model = PSFModel.from_stack(psf, 1.0, 1.0)

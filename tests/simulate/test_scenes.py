@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from scipy import ndimage
+from scipy.special import erf
 
 from volrecon.errors import ConfigError, ShapeError
 from volrecon.simulate import (
@@ -25,9 +26,7 @@ def test_render_points_conserves_photons_and_places_centroids(rng, shape):
     volume = render_points(positions, photons, shape, sigma_zyx_voxels=(0.6, 1.2, 0.9))
     assert volume.shape == shape and volume.dtype == np.float32
     if shape[0] == 1:
-        # One plane keeps the slice of the Gaussian inside it: erf(0.5 / (0.6 sqrt 2)) * ...
-        from scipy.special import erf
-
+        # One plane keeps the part of the Gaussian between its faces (normal CDF via erf).
         kept = 0.5 * (erf((0.5 - (positions[0, 0] - 0)) / (0.6 * np.sqrt(2)))
                       - erf((-0.5 - (positions[0, 0] - 0)) / (0.6 * np.sqrt(2))))
         assert volume.sum() == pytest.approx(1234.5 * kept, rel=1e-5)

@@ -95,7 +95,11 @@ class PSFStack:
         return float(steps[0])
 
     def to_model(self) -> PSFModel:
-        """The shift-invariant volrecon model of this stack (used as given)."""
+        """The shift-invariant volrecon model of this stack (used as given).
+
+        Its lateral voxel size is `sample_pixel_size_um`, or the sensor pitch where that is
+        None (the lensless camera, whose volume is then described on the sensor grid).
+        """
         from volrecon.models import PSFModel
 
         pixel = self.sample_pixel_size_um or self.pixel_size_um

@@ -19,6 +19,7 @@ from volrecon.calibrate.cleaning import (
     border_background,
     clean_psf_stack,
     crop_pixels,
+    mask_background,
     suppress_hot_pixels,
 )
 from volrecon.calibrate.compression import (
@@ -51,6 +52,7 @@ __all__ = [
     "depth_correlation",
     "estimate_shift",
     "factor_psf_stack",
+    "mask_background",
     "parse_crop",
     "parse_rank",
     "read_positions",

@@ -170,6 +170,8 @@ def calibrate_stack(
     if isinstance(rank, int) and rank > z:
         raise ConfigError(f"--rank {rank} is larger than the number of depth planes Z = {z}; "
                           f"use 1..{z} or 'auto'")
+    positions = (None if raw.ndim == 3
+                 else _binned_positions(positions_yx, scans.shape[0], crop_yx, bin_factor))
     cleaned: list[CleanedStack] = []
     for k in range(scans.shape[0]):
         try:
@@ -198,9 +200,8 @@ def calibrate_stack(
         "throughput": sums / sums.max(),
         "normalized": normalize,
     }
-    if raw.ndim == 3:
+    if positions is None:
         return _single(cleaned[0].psf_zyx, geometry, rank, energy, dtype, common)
-    positions = _binned_positions(positions_yx, scans.shape[0], crop_yx, bin_factor)
     return _field(np.stack([c.psf_zyx for c in cleaned]), positions, geometry, dtype, common)
 
 

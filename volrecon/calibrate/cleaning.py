@@ -194,8 +194,10 @@ def mask_background(stack_zyx: np.ndarray, *, sigma: float = 3.0, smoothing_px: 
     """Zero the pixels of each plane that are not near detectable PSF light.
 
     Each offset-subtracted plane is smoothed with a Gaussian of `smoothing_px`; pixels where
-    the smoothed plane exceeds `sigma` times its noise (1.4826·MAD over a border band),
-    grown by ``ceil(smoothing_px)`` pixels, are kept; the rest are set to 0. Clipping pure
+    the smoothed plane exceeds `sigma` times its noise, grown by ``ceil(smoothing_px)``
+    pixels, are kept; the rest are set to 0. The noise is the root mean square of the
+    smoothed plane's negative values (light only adds, so these are noise alone), which
+    needs no light-free border; a plane with light everywhere keeps every lit pixel. Clipping pure
     noise at zero would otherwise leave a positive pedestal of about 0.4 σ per pixel over
     the whole field (the mean of a half-normal), which for a large field can hold as much
     light as the PSF itself.
@@ -230,8 +232,11 @@ def mask_background(stack_zyx: np.ndarray, *, sigma: float = 3.0, smoothing_px: 
     kept = 0
     for z in range(out.shape[0]):
         smoothed = scipy.ndimage.gaussian_filter(out[z], smoothing_px, mode="nearest")
-        level, noise = border_background(smoothed[None])
-        support = smoothed - level[0] > sigma * max(float(noise[0]), 1e-30)
+        negative = smoothed[smoothed < 0].astype(np.float64)
+        # Light only adds, so the negative values are noise alone: for zero-mean noise
+        # E[s² | s < 0] = σ². Too few of them (light everywhere): keep every lit pixel.
+        noise = float(np.sqrt(np.mean(negative**2))) if negative.size >= 16 else 0.0
+        support = smoothed > sigma * noise
         if support.any():
             support = scipy.ndimage.binary_dilation(support, iterations=grow)
         out[z][~support] = 0.0

@@ -163,12 +163,29 @@ def _run_export(args: argparse.Namespace) -> int:
     return 0
 
 
+def _add_view(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    p = sub.add_parser(
+        "view", help="open output stores or PSF model stores in napari",
+        description="Open stores in the napari viewer (needs the 'napari' extra and a display): "
+        "a job's volumes as a 4-D image with a time slider, a PSF model as a 3-D image.")
+    p.add_argument("stores", metavar="OUT", nargs="+", help="output store(s) or model store(s)")
+    p.add_argument("--monitor", action="store_true", help="also open the job monitor")
+    p.set_defaults(run=_run_view)
+
+
+def _run_view(args: argparse.Namespace) -> int:
+    from volrecon.napari.viewer import view
+
+    return view(args.stores, monitor=args.monitor)
+
+
 _COMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [  # type: ignore[type-arg]
     _add_bench,
     _add_calibrate,
     _add_run,
     _add_status,
     _add_export,
+    _add_view,
 ]
 
 

@@ -1,0 +1,82 @@
+"""One-frame previews and the sample data, as plain functions (no Qt needed)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import tifffile
+from conftest import SHAPE_ZYX, gaussian_psf
+from scipy.signal import fftconvolve
+
+import volrecon
+from volrecon.errors import ConfigError, ShapeError
+from volrecon.napari.preview import PreviewSettings, preview_frame, read_frame
+from volrecon.napari.sample import hydrogel_sample
+
+
+@pytest.fixture
+def model():
+    return volrecon.PSFModel.from_stack(gaussian_psf(SHAPE_ZYX), 2.0, 0.65)
+
+
+def _bead_frame(model, voxel=(0, 8, 15), photons=500.0):
+    # Plane 0: the Gaussian planes nest (a wider one is a narrower one blurred), so only a
+    # bead in the sharpest plane has a unique non-negative reconstruction.
+    volume = np.zeros(SHAPE_ZYX, np.float32)
+    volume[voxel] = photons
+    return model.forward(volume)
+
+
+def test_preview_finds_the_bead_and_its_residual_is_b_minus_av(model):
+    frame = _bead_frame(model) + 100.0
+    dark = np.full(frame.shape, 100.0, np.float32)
+    before = frame.copy()
+    result = preview_frame(frame, model, PreviewSettings(method="fista", iterations=60),
+                           dark_yx=dark)
+    np.testing.assert_array_equal(frame, before)  # input untouched
+    assert result.volume_zyx.shape == SHAPE_ZYX and result.volume_zyx.dtype == np.float32
+    # Known synthetic truth: the bead sits at voxel (0, 8, 15).
+    assert np.unravel_index(result.volume_zyx.argmax(), SHAPE_ZYX) == (0, 8, 15)
+    # Reference: b − A v with A v from scipy.signal.fftconvolve (linear), cropped by the
+    # centre convention (DESIGN §3). float32 FFTs of values ~1e2: 1e-3 absolute.
+    psf = gaussian_psf(SHAPE_ZYX)
+    ny, nx = SHAPE_ZYX[1:]
+    av = sum(fftconvolve(v, h)[ny // 2:ny // 2 + ny, nx // 2:nx // 2 + nx]
+             for v, h in zip(result.volume_zyx.astype(np.float64), psf, strict=True))
+    np.testing.assert_allclose(result.residual_yx, (frame - dark) - av, atol=1e-3)
+    assert result.info.iterations <= 60 and result.settings.label() == "fista 60 it"
+
+
+def test_read_frame_from_a_tiff(tmp_path, rng):
+    frames = rng.integers(0, 4000, (3, 20, 24), dtype=np.uint16)
+    tifffile.imwrite(tmp_path / "raw.tif", frames, photometric="minisblack")
+    frame = read_frame(tmp_path / "raw.tif", 2)
+    assert frame.dtype == np.float32
+    np.testing.assert_array_equal(frame, frames[2])
+
+
+def test_preview_refuses_bad_input(model):
+    with pytest.raises(ShapeError, match=r"frame has shape \(5, 5\).*model's sensor"):
+        preview_frame(np.ones((5, 5)), model, PreviewSettings())
+    with pytest.raises(ShapeError, match="dark image has shape"):
+        preview_frame(np.ones(SHAPE_ZYX[1:]), model, PreviewSettings(), dark_yx=np.ones((2, 2)))
+    with pytest.raises(ConfigError, match="method must be one of"):
+        PreviewSettings(method="magic")
+    with pytest.raises(ConfigError, match="iterations must be at least 1"):
+        PreviewSettings(iterations=0)
+    with pytest.raises(ConfigError, match="tv and l1 must be >= 0"):
+        PreviewSettings(tv=-1.0)
+    assert PreviewSettings(tv=0.01, l1=2.0).label() == "admm 50 it, tv 0.01, l1 2"
+
+
+def test_hydrogel_sample_reconstructs_the_simulated_scene():
+    layers = hydrogel_sample(n_frames=3, n_planes=6, iterations=25)
+    (recon, recon_kwargs, _), (video, video_kwargs, _), (truth, _, _) = layers
+    assert recon.shape == truth.shape == (3, 6, 128, 128) and video.shape == (3, 1, 128, 128)
+    assert recon_kwargs["axis_labels"] == ["t", "z", "y", "x"]
+    assert recon_kwargs["scale"][1] == 2.0 and video_kwargs["visible"] is False
+    # Known synthetic truth: the reconstruction's bright voxels are where the beads and fibre
+    # are. Measured correlation with the truth is ~0.6 after 25 iterations; 0.3 leaves room
+    # for other noise draws while failing for a misplaced or empty volume (~0).
+    correlation = np.corrcoef(recon.ravel(), truth.ravel())[0, 1]
+    assert correlation > 0.3

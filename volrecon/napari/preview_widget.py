@@ -1,0 +1,247 @@
+"""The preview dock widget: reconstruct one frame with chosen settings, off the GUI thread."""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+from magicgui.widgets import (
+    CheckBox,
+    ComboBox,
+    Container,
+    FileEdit,
+    Label,
+    LineEdit,
+    PushButton,
+    SpinBox,
+)
+
+from volrecon.errors import ConfigError, ShapeError, VolreconError
+from volrecon.napari.preview import PreviewResult, PreviewSettings, preview_frame, read_frame
+from volrecon.napari.stores import VOLUME_COLORMAP
+from volrecon.solvers.reconstruct import METHODS
+
+if TYPE_CHECKING:
+    import napari
+
+    from volrecon.models.base import PSFModel
+
+__all__ = ["PreviewWidget"]
+
+FROM_FILE = "file"
+
+
+@dataclass(frozen=True)
+class _Request:
+    """Everything a preview needs, gathered on the GUI thread."""
+
+    model_path: Path
+    settings: PreviewSettings
+    frame_path: Path | None
+    layer_data: Any
+    layer_name: str
+    index: int
+    dark_path: Path | None
+
+
+@dataclass(frozen=True)
+class _Failure:
+    """A user error met in the worker: shown in the widget instead of raised."""
+
+    message: str
+
+
+def _chosen_path(widget: FileEdit) -> Path | None:
+    text = os.fspath(widget.value).strip()
+    return None if text in ("", ".") else Path(text)
+
+
+def _layer_frame(data: Any, index: int, name: str) -> np.ndarray:
+    """Frame `index` (axis 0) of an image layer's data, singleton axes dropped: (Y, X)."""
+    if getattr(data, "ndim", 0) < 2:
+        raise ShapeError(f"layer '{name}' is not an image; choose a video layer")
+    if isinstance(data, list | tuple):  # multiscale: full resolution
+        data = data[0]
+    if data.ndim > 2:
+        if not 0 <= index < data.shape[0]:
+            raise ShapeError(f"layer '{name}': frame {index} is outside 0:{data.shape[0]}; "
+                             "choose a frame of the video")
+        data = data[index]
+    # One frame of a lazy layer is all the widget reads.
+    frame = np.asarray(data.compute() if hasattr(data, "compute") else data)
+    frame = frame.reshape([n for n in frame.shape if n != 1] or [1])
+    if frame.ndim != 2:
+        raise ShapeError(f"layer '{name}': a frame has shape {frame.shape}; choose a (t, y, x) "
+                         "video layer, not a volume")
+    return frame
+
+
+class PreviewWidget(Container):
+    """Reconstruct a frame with chosen solver settings and add the volume and residual.
+
+    Each run adds two new layers, ``preview N: <settings>`` and ``preview N residual``, so runs
+    with other settings can be compared side by side (the grid view shows them next to each
+    other). The work runs in a napari ``thread_worker``; the viewer stays responsive.
+
+    Parameters
+    ----------
+    napari_viewer : napari.viewer.Viewer
+        The viewer to add layers to.
+    """
+
+    def __init__(self, napari_viewer: napari.viewer.Viewer) -> None:
+        self._viewer = napari_viewer
+        self._model_path = FileEdit(label="PSF model", mode="d")
+        self._source = ComboBox(label="frame from", choices=self._source_choices)
+        self._frame_file = FileEdit(label="frame file", mode="r",
+                                    filter="Video (*.tif *.tiff *.zarr)")
+        self._index = SpinBox(label="frame", min=0, max=2**31 - 1, value=0)
+        self._dark_file = FileEdit(label="dark image", mode="r", filter="TIFF (*.tif *.tiff)",
+                                   tooltip="optional: mean dark frame subtracted first")
+        self._method = ComboBox(label="method", choices=list(METHODS), value="admm")
+        self._iterations = SpinBox(label="iterations", min=1, max=100_000, value=50)
+        self._tv = LineEdit(label="tv", value="0")
+        self._l1 = LineEdit(label="l1", value="0")
+        self._grid = CheckBox(text="show previews side by side (grid view)", value=False)
+        self._run = PushButton(text="Reconstruct")
+        self._message = Label(value="")
+        super().__init__(widgets=[self._model_path, self._source, self._frame_file, self._index,
+                                  self._dark_file, self._method, self._iterations, self._tv,
+                                  self._l1, self._grid, self._run, self._message])
+        self._run.changed.connect(self.start)
+        self._source.changed.connect(self._update_enabled)
+        self._viewer.layers.events.inserted.connect(self._refresh_sources)
+        self._viewer.layers.events.removed.connect(self._refresh_sources)
+        self._models: dict[tuple[str, float], PSFModel] = {}
+        self._count = 0
+        self._own: list[Any] = []
+        self.worker: Any = None
+        self._update_enabled()
+
+    # ------------------------------------------------------------------------------ inputs
+    def _source_choices(self, _widget: Any = None) -> list[str]:
+        from napari.layers import Image
+
+        own = getattr(self, "_own", [])
+        names = [layer.name for layer in self._viewer.layers
+                 if isinstance(layer, Image) and layer not in own]
+        return [FROM_FILE, *names]
+
+    def _refresh_sources(self, _event: Any = None) -> None:
+        self._source.reset_choices()
+
+    def _update_enabled(self, _value: Any = None) -> None:
+        self._frame_file.enabled = self._source.value == FROM_FILE
+
+    def _request(self) -> _Request:
+        model_path = _chosen_path(self._model_path)
+        if model_path is None:
+            raise ConfigError("choose a PSF model store first (a folder written by "
+                              "'volrecon calibrate')")
+        try:
+            tv, l1 = float(self._tv.value), float(self._l1.value)
+        except ValueError as exc:
+            raise ConfigError(f"tv and l1 must be numbers; got {self._tv.value!r}, "
+                              f"{self._l1.value!r}") from exc
+        settings = PreviewSettings(method=self._method.value, iterations=self._iterations.value,
+                                   tv=tv, l1=l1)
+        source = self._source.value
+        frame_path, data, name = None, None, ""
+        if source == FROM_FILE:
+            frame_path = _chosen_path(self._frame_file)
+            if frame_path is None:
+                raise ConfigError("choose a frame file, or an image layer under 'frame from'")
+        else:
+            layer = self._viewer.layers[source]
+            data, name = layer.data, layer.name
+        return _Request(model_path=model_path, settings=settings, frame_path=frame_path,
+                        layer_data=data, layer_name=name, index=int(self._index.value),
+                        dark_path=_chosen_path(self._dark_file))
+
+    # ------------------------------------------------------------------------------- work
+    def _model(self, path: Path) -> PSFModel:
+        from volrecon import PSFModel
+
+        try:
+            stamp = (path / "zarr.json").stat().st_mtime
+        except OSError:
+            stamp = 0.0
+        key = (os.fspath(path.resolve()), stamp)
+        if key not in self._models:
+            self._models = {key: PSFModel.load(path)}  # keep one model in memory
+        return self._models[key]
+
+    def _compute(self, request: _Request) -> tuple[PreviewResult, PSFModel] | _Failure:
+        """Runs in the worker thread."""
+        from volrecon.io import read_image
+
+        try:
+            model = self._model(request.model_path)
+            if request.frame_path is not None:
+                frame = read_frame(request.frame_path, request.index)
+            else:
+                frame = _layer_frame(request.layer_data, request.index, request.layer_name)
+            dark = None if request.dark_path is None else read_image(request.dark_path)
+            return preview_frame(frame, model, request.settings, dark_yx=dark), model
+        except VolreconError as exc:
+            return _Failure(str(exc))
+
+    def start(self, _value: Any = None) -> Any:
+        """Start a preview with the current settings; returns the worker (None on bad input)."""
+        from napari.qt.threading import thread_worker
+
+        try:
+            request = self._request()
+        except VolreconError as exc:
+            self._message.value = str(exc)
+            return None
+        self._run.enabled = False
+        self._message.value = f"reconstructing ({request.settings.label()}) …"
+        worker = thread_worker(self._compute, start_thread=False)(request)
+        worker.returned.connect(self._show)
+        worker.finished.connect(self._done)
+        self.worker = worker
+        worker.start()
+        return worker
+
+    def _done(self) -> None:
+        self._run.enabled = True
+
+    def _show(self, outcome: tuple[PreviewResult, PSFModel] | _Failure) -> None:
+        if isinstance(outcome, _Failure):
+            self._message.value = outcome.message
+            return
+        result, model = outcome
+        self._count += 1
+        n = self._count
+        g = model.geometry
+        high = float(result.volume_zyx.max()) or 1.0
+        spread = float(np.abs(result.residual_yx).max()) or 1.0
+        info = result.info
+        metadata = {"volrecon_preview": {"settings": result.settings.label(),
+                                         "iterations": info.iterations,
+                                         "residual": info.residual,
+                                         "objective": info.objective,
+                                         "seconds": info.seconds}}
+        for layer in self._own:
+            if layer in self._viewer.layers:
+                layer.visible = bool(self._grid.value)
+        volume = self._viewer.add_image(
+            result.volume_zyx, name=f"preview {n}: {result.settings.label()}",
+            scale=(g.depth_step_um, g.pixel_size_um, g.pixel_size_um),
+            translate=(g.depth_start_um, 0.0, 0.0), axis_labels=("z", "y", "x"),
+            units=("micrometer",) * 3, contrast_limits=(0.0, high), colormap=VOLUME_COLORMAP,
+            blending="additive", metadata=metadata)
+        residual = self._viewer.add_image(
+            result.residual_yx, name=f"preview {n} residual",
+            scale=(g.pixel_size_um, g.pixel_size_um), axis_labels=("y", "x"),
+            units=("micrometer",) * 2, contrast_limits=(-spread, spread), colormap="PiYG",
+            visible=bool(self._grid.value), metadata=metadata)
+        self._own += [volume, residual]
+        if self._grid.value:
+            self._viewer.grid.enabled = True
+        self._message.value = (f"preview {n}: {info.iterations} iterations, residual "
+                               f"{info.residual:.3g}, {info.seconds:.2f} s")

@@ -1,0 +1,373 @@
+"""Turn volrecon stores into napari layer data, lazily (no napari or Qt needed).
+
+Two kinds of store open in the viewer:
+
+- an **output store** of a job (``volumes.zarr``): the ``(t, z, y, x)`` image as one dask array
+  with the physical scale, translation, units and axis names of its OME-NGFF 0.5 metadata,
+  plus its maximum projections (when the job wrote them) as extra, hidden layers;
+- a **PSF model store**: the PSF stack as a ``(z, y, x)`` image, and for a depth low-rank model
+  also its lateral kernels.
+
+Each function returns napari "layer data tuples" ``(data, kwargs, "image")``. Pixels are read
+only when napari displays them, except one frame per output store (see
+:func:`output_store_layers`) to choose the contrast limits.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import uuid
+from pathlib import Path
+from typing import Any, Literal
+
+import numpy as np
+
+from volrecon.errors import InputFileError, ModelStoreError
+from volrecon.models.store import MODEL_ATTRIBUTE
+from volrecon.pipeline.store import STATUS_DONE, STORE_ATTRIBUTE
+
+__all__ = [
+    "LayerData",
+    "model_store_layers",
+    "output_store_layers",
+    "store_kind",
+    "store_layers",
+]
+
+#: napari's (data, kwargs, layer type) triple.
+LayerData = tuple[Any, dict[str, Any], str]
+#: Colour map of reconstructed volumes (perceptually uniform, dark background).
+VOLUME_COLORMAP = "magma"
+_OUTPUT_ATTRIBUTE = STORE_ATTRIBUTE
+_MODEL_ATTRIBUTE = MODEL_ATTRIBUTE
+
+
+def _group_attributes(path: Path) -> dict[str, Any] | None:
+    """The attributes in ``path/zarr.json`` of a zarr v3 group, or None if it is not one."""
+    try:
+        document = json.loads((path / "zarr.json").read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, ValueError):
+        return None
+    if not isinstance(document, dict) or document.get("node_type") != "group":
+        return None
+    attributes = document.get("attributes", {})
+    return attributes if isinstance(attributes, dict) else None
+
+
+def store_kind(path: str | os.PathLike[str]) -> Literal["output", "model"] | None:
+    """Which volrecon store `path` is: ``"output"``, ``"model"`` or None (not ours).
+
+    Reads one small metadata file; never raises.
+    """
+    attributes = _group_attributes(Path(path))
+    if attributes is None:
+        return None
+    if _OUTPUT_ATTRIBUTE in attributes:
+        return "output"
+    if _MODEL_ATTRIBUTE in attributes:
+        return "model"
+    return None
+
+
+def store_layers(path: str | os.PathLike[str]) -> list[LayerData]:
+    """Layers of any volrecon store (output or PSF model).
+
+    Raises
+    ------
+    InputFileError
+        If `path` is neither kind of store.
+    """
+    kind = store_kind(path)
+    if kind == "output":
+        return output_store_layers(path)
+    if kind == "model":
+        return model_store_layers(path)
+    raise InputFileError(
+        f"{path}: not a volrecon output store or PSF model store (no 'volrecon' or "
+        "'volrecon_model' attribute in zarr.json); give a job's [output] path or a model store"
+    )
+
+
+# ------------------------------------------------------------------------------ output store
+def _open_group(path: Path) -> Any:
+    import zarr
+
+    return zarr.open_group(zarr.storage.LocalStore(path, read_only=True), mode="r")
+
+
+def _ome_geometry(path: Path, attributes: dict[str, Any]
+                  ) -> tuple[str, list[str], list[str], list[float], list[float], str]:
+    """(level path, axis names, units, scale, translation, image name) of the first level."""
+    try:
+        multiscale = attributes["ome"]["multiscales"][0]
+        axes = multiscale["axes"]
+        dataset = multiscale["datasets"][0]
+        names = [str(a["name"]) for a in axes]
+        units = [str(a.get("unit", "")) for a in axes]
+        scale: list[float] | None = None
+        translation = [0.0] * len(axes)
+        for transform in dataset.get("coordinateTransformations", []):
+            if transform.get("type") == "scale":
+                scale = [float(s) for s in transform["scale"]]
+            elif transform.get("type") == "translation":
+                translation = [float(v) for v in transform["translation"]]
+        level = str(dataset["path"])
+        name = str(multiscale.get("name", path.stem))
+    except (KeyError, IndexError, TypeError, ValueError) as exc:
+        raise InputFileError(
+            f"{path}: attribute 'ome/multiscales' is missing or malformed ({exc!r}); the store "
+            "is not OME-NGFF 0.5 as volrecon writes it, re-run the job with --restart"
+        ) from exc
+    if scale is None or len(scale) != len(names) or len(translation) != len(names):
+        raise InputFileError(
+            f"{path}: 'ome/multiscales/0/datasets/0' needs one scale (and translation) value "
+            f"per axis {names}; re-run the job with --restart"
+        )
+    return level, names, units, scale, translation, name
+
+
+def _frame_for_contrast(status: np.ndarray | None) -> int | None:
+    """Index of a finished frame to read for the contrast limits (the middle one), or None."""
+    if status is None:
+        return None
+    done = np.flatnonzero(status == STATUS_DONE)
+    return int(done[len(done) // 2]) if done.size else None
+
+
+def _contrast_limits(group: Any, image: Any, frame: int | None) -> tuple[float, float]:
+    """(0, max) of one finished frame: its projection if the job wrote one, else the frame."""
+    if frame is None:
+        return (0.0, 1.0)
+    projections = group.get("projections")
+    if projections is not None and "max_z" in projections:
+        sample = np.asarray(projections["max_z"][frame])
+    else:
+        sample = np.asarray(image[frame])
+    finite = sample[np.isfinite(sample)]
+    if finite.size == 0:
+        return (0.0, 1.0)
+    low, high = min(0.0, float(finite.min())), float(finite.max())
+    return (low, high) if high > low else (low, low + 1.0)
+
+
+def output_store_layers(path: str | os.PathLike[str]) -> list[LayerData]:
+    """The image of a job's output store as a lazy 4-D layer, its projections as extra ones.
+
+    Parameters
+    ----------
+    path : str or path
+        A store written by ``volrecon run`` (complete or still being written).
+
+    Returns
+    -------
+    list of (data, kwargs, "image")
+        First the volumes: a dask array ``(T, Z, Y, X)`` float32, one dask chunk per zarr
+        chunk, with ``scale`` (frame interval in seconds, voxel size in micrometres),
+        ``translate``, ``axis_labels``, ``units`` and ``contrast_limits``. Then, when the store
+        has them, the projections ``max_z`` ``(T, 1, Y, X)``, ``max_y`` ``(T, Z, 1, X)`` and
+        ``max_x`` ``(T, Z, Y, 1)``, hidden, with the projected axis stretched over the whole
+        volume so they sit where the volume is.
+
+    Raises
+    ------
+    InputFileError
+        If `path` is not an output store or its OME metadata is malformed.
+
+    Notes
+    -----
+    Frames not yet reconstructed read as NaN (the store's fill value) and show as empty.
+    The contrast limits are ``(0, max)`` of one finished frame (its ``max_z`` projection
+    when present, which is much smaller), so opening reads at most one frame's chunks.
+    """
+    import dask.array as da
+
+    path = Path(path)
+    attributes = _group_attributes(path)
+    if attributes is None or _OUTPUT_ATTRIBUTE not in attributes:
+        raise InputFileError(
+            f"{path}: not a volrecon output store (no '{_OUTPUT_ATTRIBUTE}' attribute in "
+            "zarr.json); give the [output] path of a job"
+        )
+    level, names, units, scale, translation, name = _ome_geometry(path, attributes)
+    group = _open_group(path)
+    try:
+        image = group[level]
+    except KeyError as exc:
+        raise InputFileError(
+            f"{path}: image array '{level}' is missing; the job was interrupted while creating "
+            "the store, run it again"
+        ) from exc
+    if image.ndim != len(names):
+        raise InputFileError(
+            f"{path}: array '{level}' has {image.ndim} axes but 'ome/multiscales' names "
+            f"{len(names)} ({', '.join(names)}); re-run the job with --restart"
+        )
+    diagnostics = group.get("diagnostics")
+    status = None
+    if diagnostics is not None and "status" in diagnostics:
+        status = np.asarray(diagnostics["status"][...])
+    frame = _frame_for_contrast(status)
+    # A new dask name on every read: napari's chunk cache then never serves a chunk read
+    # before a running job wrote it.
+    opened = uuid.uuid4().hex
+    volumes = da.from_zarr(image, name=f"volrecon-volumes-{opened}")
+    metadata = {
+        "volrecon_store": os.fspath(path.resolve()),
+        "volrecon_kind": "output",
+        "volrecon": attributes.get(_OUTPUT_ATTRIBUTE, {}),
+    }
+    layers: list[LayerData] = [(volumes, {
+        "name": path.stem if name == "volumes" else name,
+        "scale": scale,
+        "translate": translation,
+        "axis_labels": names,
+        "units": units,
+        "contrast_limits": _contrast_limits(group, image, frame),
+        "colormap": VOLUME_COLORMAP,
+        "blending": "additive",
+        "metadata": metadata,
+    }, "image")]
+    layers.extend(_projection_layers(path, group, names, units, scale, translation,
+                                     tuple(image.shape), layers[0][1]["contrast_limits"],
+                                     opened))
+    return layers
+
+
+def _projection_layers(path: Path, group: Any, names: list[str], units: list[str],
+                       scale: list[float], translation: list[float], shape: tuple[int, ...],
+                       limits: tuple[float, float], opened: str) -> list[LayerData]:
+    """Hidden 4-D layers of the ``projections`` group, each with a singleton projected axis."""
+    import dask.array as da
+
+    projections = group.get("projections")
+    if projections is None or names != ["t", "z", "y", "x"]:
+        return []
+    layers: list[LayerData] = []
+    for key in ("max_z", "max_y", "max_x"):
+        if key not in projections:
+            continue
+        axis = names.index(key[-1])
+        array = projections[key]
+        expected = shape[:axis] + shape[axis + 1:]
+        if tuple(array.shape) != expected:
+            raise InputFileError(
+                f"{path}: projection 'projections/{key}' has shape {tuple(array.shape)}, "
+                f"expected {expected} from the image; re-run the job with --restart"
+            )
+        # One plane covering the whole projected extent: centre it on the volume.
+        layer_scale = list(scale)
+        layer_translate = list(translation)
+        layer_scale[axis] = scale[axis] * shape[axis]
+        layer_translate[axis] = translation[axis] + scale[axis] * (shape[axis] - 1) / 2
+        data = da.from_zarr(array, name=f"volrecon-{key}-{opened}")
+        layers.append((da.expand_dims(data, axis), {
+            "name": f"{path.stem} {key}",
+            "scale": layer_scale,
+            "translate": layer_translate,
+            "axis_labels": names,
+            "units": units,
+            "contrast_limits": limits,
+            "colormap": VOLUME_COLORMAP,
+            "blending": "additive",
+            "visible": False,
+            "metadata": {"volrecon_store": os.fspath(path.resolve()),
+                         "volrecon_kind": f"projection/{key}"},
+        }, "image"))
+    return layers
+
+
+# ------------------------------------------------------------------------------- model store
+def _expand_low_rank(weights_zr: Any, kernels_ryx: Any) -> Any:
+    """Lazy ``h_z = Σ_r U[z, r] g_r``, one dask chunk per depth plane."""
+    import dask.array as da
+
+    weights = weights_zr.rechunk({0: 1, 1: -1})
+    return da.tensordot(weights, kernels_ryx.rechunk({0: -1}), axes=(1, 0)).astype(np.float32)
+
+
+def model_store_layers(path: str | os.PathLike[str]) -> list[LayerData]:
+    """A PSF model store as a lazy ``(z, y, x)`` PSF image (and kernels where it has them).
+
+    Parameters
+    ----------
+    path : str or path
+        A store written by ``PSFModel.save`` or ``volrecon calibrate``.
+
+    Returns
+    -------
+    list of (data, kwargs, "image")
+        - depth-convolution: the PSF stack ``(Z, Y, X)``;
+        - depth-low-rank: the stack the model applies, ``h_z = Σ_r U[z, r] g_r``, computed one
+          plane at a time when displayed, and the kernels ``(r, Y, X)`` (hidden);
+        - field-varying: the kernels ``(K, Z, Y, X)``, one PSF stack per field position.
+        Depth is scaled by the model's depth step and starts at its first depth; y and x by
+        its pixel size (micrometres).
+
+    Raises
+    ------
+    ModelStoreError
+        If `path` is not a model store, or lacks an array its kind needs.
+    """
+    import dask.array as da
+
+    path = Path(path)
+    attributes = _group_attributes(path)
+    info = None if attributes is None else attributes.get(_MODEL_ATTRIBUTE)
+    if not isinstance(info, dict):
+        raise ModelStoreError(
+            f"{path}: no '{_MODEL_ATTRIBUTE}' attribute in zarr.json, so not a volrecon PSF "
+            "model; pass a directory written by 'volrecon calibrate' or PSFModel.save"
+        )
+    try:
+        depth_step = float(info["depth_step_um"])
+        pixel = float(info["pixel_size_um"])
+        depth_start = float(info.get("depth_start_um", 0.0))
+        kind = str(info["kind"])
+    except (KeyError, TypeError, ValueError) as exc:
+        raise ModelStoreError(
+            f"{path}: attribute '{_MODEL_ATTRIBUTE}' lacks a valid {exc!r}; re-run calibration"
+        ) from exc
+    if not all(math.isfinite(v) for v in (depth_step, pixel, depth_start)):
+        raise ModelStoreError(f"{path}: model geometry is not finite; re-run calibration")
+    group = _open_group(path)
+
+    def array(key: str) -> Any:
+        try:
+            return da.from_zarr(group[key])
+        except KeyError as exc:
+            raise ModelStoreError(
+                f"{path}: {kind} model store lacks array '{key}'; the store is incomplete, "
+                "re-run calibration"
+            ) from exc
+
+    space = ["micrometer"] * 3
+    zyx = {"scale": [depth_step, pixel, pixel], "translate": [depth_start, 0.0, 0.0],
+           "axis_labels": ["z", "y", "x"], "units": space}
+    metadata = {"volrecon_store": os.fspath(path.resolve()), "volrecon_kind": "model",
+                "volrecon_model": info}
+    common = {"colormap": "inferno", "metadata": metadata}
+    if kind == "depth-convolution":
+        return [(array("psf"), {"name": f"{path.stem} PSF", **zyx, **common}, "image")]
+    if kind == "depth-low-rank":
+        kernels, weights = array("kernels"), array("weights")
+        stack = _expand_low_rank(weights, kernels)
+        return [
+            (stack, {"name": f"{path.stem} PSF", **zyx, **common}, "image"),
+            (kernels, {"name": f"{path.stem} kernels", "scale": [1.0, pixel, pixel],
+                       "axis_labels": ["kernel", "y", "x"],
+                       "units": ["dimensionless", *space[1:]],
+                       "visible": False, **common}, "image"),
+        ]
+    if kind == "field-varying":
+        kernels = array("kernels")  # (Z, K, Y, X)
+        return [(da.moveaxis(kernels, 1, 0), {
+            "name": f"{path.stem} PSF per field position", "scale": [1.0, depth_step, pixel, pixel],
+            "translate": [0.0, depth_start, 0.0, 0.0],
+            "axis_labels": ["field position", "z", "y", "x"], "units": ["dimensionless", *space],
+            **common}, "image")]
+    raise ModelStoreError(
+        f"{path}: attribute '{_MODEL_ATTRIBUTE}/kind' is {kind!r}, which this viewer cannot "
+        "show; known kinds: depth-convolution, depth-low-rank, field-varying"
+    )

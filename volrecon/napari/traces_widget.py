@@ -1,0 +1,200 @@
+"""The time-traces dock widget: mean intensity over time in drawn regions, ΔF/F, CSV."""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+from magicgui.widgets import (
+    CheckBox,
+    ComboBox,
+    Container,
+    FileEdit,
+    FloatSpinBox,
+    Label,
+    PushButton,
+    SpinBox,
+)
+
+from volrecon.errors import ConfigError, VolreconError
+from volrecon.napari._plot import PlotCanvas
+from volrecon.napari.regions import frame_times_s, layer_regions
+from volrecon.napari.traces import delta_f_over_f, region_means, write_traces_csv
+
+if TYPE_CHECKING:
+    import napari
+
+__all__ = ["TimeTracesWidget", "Traces"]
+
+
+@dataclass(frozen=True, eq=False)
+class Traces:
+    """Mean intensity per frame of each region, as last computed.
+
+    Attributes
+    ----------
+    names : list of str
+        Region labels (``"point 0"``, ``"rectangle 1"``, …).
+    time_s : ndarray of shape (T,)
+        Frame times, seconds.
+    means_tr : ndarray of shape (T, R)
+        Mean intensity; NaN for frames not reconstructed yet.
+    image_name, regions_name : str
+        The layers they came from.
+    """
+
+    names: list[str]
+    time_s: np.ndarray
+    means_tr: np.ndarray
+    image_name: str
+    regions_name: str
+
+
+def _compute(data: Any, regions: list[Any], names: list[str], times: np.ndarray,
+             image_name: str, regions_name: str) -> Traces:
+    """Runs in the worker thread; reads only the chunks the regions touch."""
+    means = region_means(data, regions)
+    values = means.compute() if hasattr(means, "compute") else means
+    return Traces(names=names, time_s=times, means_tr=np.asarray(values), image_name=image_name,
+                  regions_name=regions_name)
+
+
+class TimeTracesWidget(Container):
+    """Plot mean intensity over time in regions drawn on a 4-D (or 3-D) image layer.
+
+    Points become balls of the chosen radius; rectangles, polygons and ellipses of a Shapes
+    layer become prisms through the plane they were drawn on. ΔF/F divides by a low
+    percentile of each trace. "Export CSV" writes what the plot shows.
+
+    Parameters
+    ----------
+    napari_viewer : napari.viewer.Viewer
+        The viewer whose layers are offered.
+    """
+
+    def __init__(self, napari_viewer: napari.viewer.Viewer) -> None:
+        self._viewer = napari_viewer
+        self._image = ComboBox(label="image", choices=self._image_choices)
+        self._regions = ComboBox(label="regions", choices=self._region_choices)
+        self._radius = FloatSpinBox(label="point radius (µm)", min=0.01, max=1e4, value=2.0,
+                                    step=0.5)
+        self._thickness = SpinBox(label="shape ± planes", min=0, max=10_000, value=0)
+        self._dff = CheckBox(text="ΔF/F", value=False)
+        self._percentile = FloatSpinBox(label="F0 percentile", min=0.0, max=100.0, value=10.0)
+        self._plot_button = PushButton(text="Plot traces")
+        self._csv = FileEdit(label="CSV file", mode="w", filter="CSV (*.csv)")
+        self._export_button = PushButton(text="Export CSV")
+        self._message = Label(value="")
+        super().__init__(widgets=[self._image, self._regions, self._radius, self._thickness,
+                                  self._dff, self._percentile, self._plot_button, self._csv,
+                                  self._export_button, self._message])
+        self._plot = PlotCanvas(rows=1, height_in=2.2)
+        self.native.layout().addWidget(self._plot.widget)
+        self._plot_button.changed.connect(self.start)
+        self._export_button.changed.connect(self.export)
+        self._dff.changed.connect(self._redraw)
+        self._percentile.changed.connect(self._redraw)
+        for event in (self._viewer.layers.events.inserted, self._viewer.layers.events.removed):
+            event.connect(self._refresh_choices)
+        self.worker: Any = None
+        self.traces: Traces | None = None
+
+    # ----------------------------------------------------------------------------- inputs
+    def _image_choices(self, _widget: Any = None) -> list[str]:
+        from napari.layers import Image
+
+        return [layer.name for layer in self._viewer.layers
+                if isinstance(layer, Image) and layer.ndim in (3, 4)]
+
+    def _region_choices(self, _widget: Any = None) -> list[str]:
+        from napari.layers import Points, Shapes
+
+        return [layer.name for layer in self._viewer.layers
+                if isinstance(layer, Points | Shapes)]
+
+    def _refresh_choices(self, _event: Any = None) -> None:
+        self._image.reset_choices()
+        self._regions.reset_choices()
+
+    # ------------------------------------------------------------------------------- work
+    def start(self, _value: Any = None) -> Any:
+        """Compute the traces in a worker thread; returns the worker (None on bad input)."""
+        from napari.qt.threading import thread_worker
+
+        try:
+            if self._image.value is None or self._regions.value is None:
+                raise ConfigError("choose an image layer and a Points or Shapes layer first")
+            image = self._viewer.layers[self._image.value]
+            regions_layer = self._viewer.layers[self._regions.value]
+            regions = layer_regions(image, regions_layer, radius_um=self._radius.value,
+                                    half_thickness_planes=self._thickness.value)
+        except VolreconError as exc:
+            self._message.value = str(exc)
+            return None
+        data = image.data[0] if image.multiscale else image.data
+        self._message.value = f"reading {len(regions)} regions …"
+        self._plot_button.enabled = False
+        worker = thread_worker(_compute, start_thread=False)(
+            data, regions, [r.name for r in regions], frame_times_s(image), image.name,
+            regions_layer.name)
+        worker.returned.connect(self._show)
+        worker.finished.connect(self._done)
+        self.worker = worker
+        worker.start()
+        return worker
+
+    def _done(self) -> None:
+        self._plot_button.enabled = True
+
+    def _show(self, traces: Traces) -> None:
+        self.traces = traces
+        self._redraw()
+
+    def _values(self) -> tuple[Traces, np.ndarray, str]:
+        traces = self.traces
+        if traces is None:
+            raise ConfigError("plot the traces first")
+        if self._dff.value:
+            return (traces, delta_f_over_f(traces.means_tr,
+                                           baseline_percentile=self._percentile.value), "dF/F")
+        return traces, traces.means_tr, "mean"
+
+    def _redraw(self, _value: Any = None) -> None:
+        if self.traces is None:
+            return
+        plot = self._plot
+        plot.clear()
+        try:
+            traces, values, kind = self._values()
+        except VolreconError as exc:
+            self._message.value = str(exc)
+            plot.draw()
+            return
+        ax = plot.axes[0]
+        for name, column in zip(traces.names, values.T, strict=True):
+            ax.plot(traces.time_s, column, label=name, linewidth=1.2)
+        ax.set_xlabel("time (s)", fontsize=8)
+        ax.set_ylabel("ΔF/F" if kind == "dF/F" else "mean intensity", fontsize=8)
+        if len(traces.names) <= 10:
+            ax.legend(fontsize=7, loc="best")
+        plot.draw()
+        self._message.value = (f"{len(traces.names)} regions of '{traces.image_name}', "
+                               f"{len(traces.time_s)} frames")
+
+    def export(self, _value: Any = None) -> Path | None:
+        """Write the plotted traces to the chosen CSV file; returns its path (None on error)."""
+        text = os.fspath(self._csv.value).strip()
+        try:
+            if text in ("", "."):
+                raise ConfigError("choose a CSV file to write first")
+            traces, values, kind = self._values()
+            path = write_traces_csv(text, values, names=traces.names, time_s=traces.time_s,
+                                    value=kind)
+        except (VolreconError, OSError) as exc:
+            self._message.value = str(exc)
+            return None
+        self._message.value = f"wrote {path}"
+        return path

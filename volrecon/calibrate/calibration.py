@@ -244,7 +244,7 @@ def _binned_positions(positions_yx: Any, k: int, crop_yx: tuple[int, int, int, i
     if crop_yx is not None:
         pos = pos - np.array([crop_yx[0], crop_yx[2]], dtype=np.float64)
     # Binned pixel i covers raw pixels i*b .. i*b + b - 1, centred at i*b + (b - 1)/2.
-    return (pos - (bin_factor - 1) / 2.0) / bin_factor  # type: ignore[no-any-return]
+    return (pos - (bin_factor - 1) / 2.0) / bin_factor
 
 
 def _metrics(psf_zyx: np.ndarray, geometry: Geometry) -> dict[str, Any]:
@@ -270,7 +270,7 @@ def _single(psf_zyx: np.ndarray, geometry: Geometry, rank: int | str | None, ene
     factors = None if rank is None else factor_psf_stack(psf_zyx, rank=rank, energy=energy)
     report = CalibrationReport(
         model_kind=DepthConvolutionPSF.kind if factors is None else LowRankDepthPSF.kind,
-        shape_zyx=tuple(psf_zyx.shape),  # type: ignore[arg-type]
+        shape_zyx=(psf_zyx.shape[0], psf_zyx.shape[1], psf_zyx.shape[2]),
         rank=psf_zyx.shape[0] if factors is None else factors.rank,
         registration_shifts_yx=None,
         reference_position=None,

@@ -101,7 +101,7 @@ def bin_pixels(stack: Any, factor: int) -> np.ndarray:
                           f"up to {min(ny, nx)}")
     by, bx = ny // factor, nx // factor
     trimmed = a[..., : by * factor, : bx * factor]
-    return trimmed.reshape(*a.shape[:-2], by, factor, bx, factor).sum(axis=(-3, -1))
+    return np.asarray(trimmed.reshape(*a.shape[:-2], by, factor, bx, factor).sum(axis=(-3, -1)))
 
 
 def border_background(stack_zyx: np.ndarray, *, width: int | None = None

@@ -73,7 +73,7 @@ def select_rank(singular_values: np.ndarray, energy: float) -> int:
         raise ConfigError(f"--energy must be a fraction in (0, 1], e.g. 0.999; got {energy!r}")
     kept = retained_energy(singular_values)
     # A tolerance of a few float64 ulps keeps energy = 1 reachable despite rounding.
-    return int(min(np.searchsorted(kept, energy - 1e-12) + 1, kept.size))
+    return min(int(np.searchsorted(kept, energy - 1e-12)) + 1, int(kept.size))
 
 
 def stack_singular_values(psf_zyx: Any) -> np.ndarray:

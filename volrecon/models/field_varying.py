@@ -268,7 +268,7 @@ class FieldVaryingPSF(PSFModel):
         """The blended PSF stack for a point at sensor pixel ``(y, x)``, shape (Z, Y, X)."""
         w = self.weights[..., y, x]  # (K,) or (Z, K)
         w = np.broadcast_to(w, self.kernels_zkyx.shape[:2])
-        return np.einsum("zk,zkyx->zyx", w, self.kernels_zkyx)
+        return np.asarray(np.einsum("zk,zkyx->zyx", w, self.kernels_zkyx))
 
     def _forward(self, volumes: Array) -> Array:
         xp = self.backend.xp

@@ -118,7 +118,7 @@ class LowRankDepthPSF(PSFModel):
 
         Allocates Z planes; meant for inspection and tests, not for the solvers.
         """
-        return np.einsum("zr,ryx->zyx", self.weights_zr, self.kernels_ryx)
+        return np.asarray(np.einsum("zr,ryx->zyx", self.weights_zr, self.kernels_ryx))
 
     def transfer_functions(self) -> Array:
         """Expanded per-plane spectra ``Ĥ_z = Σ_r U[z, r] Ĝ_r``, shape (Z, Py, Px//2+1).

@@ -31,7 +31,7 @@ class PlotCanvas:
         self.axes = list(figure.subplots(rows, 1, sharex=True, squeeze=False)[:, 0])
         for ax in self.axes:
             self._style(ax)
-        self.widget = FigureCanvasQTAgg(figure)
+        self.widget = FigureCanvasQTAgg(figure)  # type: ignore[no-untyped-call]
         self.widget.setMinimumHeight(int(120 * rows))
 
     @staticmethod
@@ -52,4 +52,4 @@ class PlotCanvas:
 
     def draw(self) -> None:
         """Redraw when Qt is next idle."""
-        self.widget.draw_idle()
+        self.widget.draw_idle()  # type: ignore[no-untyped-call]

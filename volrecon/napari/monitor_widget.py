@@ -7,9 +7,12 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
+from magicgui.types import FileDialogMode
 from magicgui.widgets import CheckBox, Container, FileEdit, FloatSpinBox, Label, PushButton
+from magicgui.widgets.bases import Widget
 
 from volrecon.errors import VolreconError
+from volrecon.napari._inputs import chosen_path
 from volrecon.napari._plot import PlotCanvas
 from volrecon.napari.monitoring import JobSnapshot, plot_series, read_job_snapshot
 
@@ -27,7 +30,7 @@ def _read(path: Path) -> JobSnapshot | str:
         return str(exc)
 
 
-class JobMonitorWidget(Container):
+class JobMonitorWidget(Container[Widget]):
     """Follow a job's output store: frames done and failed, time left, diagnostics plots.
 
     The store is read every few seconds (a Qt timer) in a worker thread; a run writing it is
@@ -44,7 +47,7 @@ class JobMonitorWidget(Container):
         from qtpy.QtCore import QTimer
 
         self._viewer = napari_viewer
-        self._store = FileEdit(label="output store", mode="d")
+        self._store = FileEdit(label="output store", mode=FileDialogMode.EXISTING_DIRECTORY)
         self._interval = FloatSpinBox(label="refresh every (s)", min=0.2, max=3600.0,
                                       value=2.0, step=0.5)
         self._follow = CheckBox(text="refresh automatically", value=True)
@@ -69,8 +72,7 @@ class JobMonitorWidget(Container):
 
     # ----------------------------------------------------------------------------- inputs
     def _store_path(self) -> Path | None:
-        text = os.fspath(self._store.value).strip()
-        return None if text in ("", ".") else Path(text)
+        return chosen_path(self._store)
 
     def _offer_layer_store(self, _event: Any = None) -> None:
         """Choose the first output store opened in the viewer if none is chosen yet."""

@@ -90,7 +90,8 @@ def read_frame(path: str | os.PathLike[str], index: int = 0) -> np.ndarray:
     from volrecon.io import open_frames
 
     source = open_frames(path)
-    return source.read(index, index + 1)[0].astype(np.float32)
+    frame: np.ndarray = source.read(index, index + 1)[0].astype(np.float32)
+    return frame
 
 
 def preview_frame(frame_yx: Any, model: PSFModel, settings: PreviewSettings, *,

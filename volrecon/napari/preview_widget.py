@@ -8,6 +8,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
+from magicgui.types import FileDialogMode
 from magicgui.widgets import (
     CheckBox,
     ComboBox,
@@ -18,8 +19,10 @@ from magicgui.widgets import (
     PushButton,
     SpinBox,
 )
+from magicgui.widgets.bases import Widget
 
 from volrecon.errors import ConfigError, ShapeError, VolreconError
+from volrecon.napari._inputs import chosen_path
 from volrecon.napari.preview import PreviewResult, PreviewSettings, preview_frame, read_frame
 from volrecon.napari.stores import VOLUME_COLORMAP
 from volrecon.solvers.reconstruct import METHODS
@@ -54,11 +57,6 @@ class _Failure:
     message: str
 
 
-def _chosen_path(widget: FileEdit) -> Path | None:
-    text = os.fspath(widget.value).strip()
-    return None if text in ("", ".") else Path(text)
-
-
 def _layer_frame(data: Any, index: int, name: str) -> np.ndarray:
     """Frame `index` (axis 0) of an image layer's data, singleton axes dropped: (Y, X)."""
     if getattr(data, "ndim", 0) < 2:
@@ -79,7 +77,7 @@ def _layer_frame(data: Any, index: int, name: str) -> np.ndarray:
     return frame
 
 
-class PreviewWidget(Container):
+class PreviewWidget(Container[Widget]):
     """Reconstruct a frame with chosen solver settings and add the volume and residual.
 
     Each run adds two new layers, ``preview N: <settings>`` and ``preview N residual``, so runs
@@ -94,12 +92,13 @@ class PreviewWidget(Container):
 
     def __init__(self, napari_viewer: napari.viewer.Viewer) -> None:
         self._viewer = napari_viewer
-        self._model_path = FileEdit(label="PSF model", mode="d")
+        self._model_path = FileEdit(label="PSF model", mode=FileDialogMode.EXISTING_DIRECTORY)
         self._source = ComboBox(label="frame from", choices=self._source_choices)
-        self._frame_file = FileEdit(label="frame file", mode="r",
+        self._frame_file = FileEdit(label="frame file", mode=FileDialogMode.EXISTING_FILE,
                                     filter="Video (*.tif *.tiff *.zarr)")
         self._index = SpinBox(label="frame", min=0, max=2**31 - 1, value=0)
-        self._dark_file = FileEdit(label="dark image", mode="r", filter="TIFF (*.tif *.tiff)",
+        self._dark_file = FileEdit(label="dark image", mode=FileDialogMode.EXISTING_FILE,
+                                   filter="TIFF (*.tif *.tiff)",
                                    tooltip="optional: mean dark frame subtracted first")
         self._method = ComboBox(label="method", choices=list(METHODS), value="admm")
         self._iterations = SpinBox(label="iterations", min=1, max=100_000, value=50)
@@ -137,7 +136,7 @@ class PreviewWidget(Container):
         self._frame_file.enabled = self._source.value == FROM_FILE
 
     def _request(self) -> _Request:
-        model_path = _chosen_path(self._model_path)
+        model_path = chosen_path(self._model_path)
         if model_path is None:
             raise ConfigError("choose a PSF model store first (a folder written by "
                               "'volrecon calibrate')")
@@ -151,7 +150,7 @@ class PreviewWidget(Container):
         source = self._source.value
         frame_path, data, name = None, None, ""
         if source == FROM_FILE:
-            frame_path = _chosen_path(self._frame_file)
+            frame_path = chosen_path(self._frame_file)
             if frame_path is None:
                 raise ConfigError("choose a frame file, or an image layer under 'frame from'")
         else:
@@ -159,7 +158,7 @@ class PreviewWidget(Container):
             data, name = layer.data, layer.name
         return _Request(model_path=model_path, settings=settings, frame_path=frame_path,
                         layer_data=data, layer_name=name, index=int(self._index.value),
-                        dark_path=_chosen_path(self._dark_file))
+                        dark_path=chosen_path(self._dark_file))
 
     # ------------------------------------------------------------------------------- work
     def _model(self, path: Path) -> PSFModel:

@@ -90,6 +90,13 @@ def store_layers(path: str | os.PathLike[str]) -> list[LayerData]:
     )
 
 
+def _lazy(array: Any, name: str | None = None) -> Any:
+    """A zarr array as a dask array with one dask chunk per zarr chunk."""
+    import dask.array as da
+
+    return da.from_zarr(array, name=name)  # type: ignore[no-untyped-call]
+
+
 # ------------------------------------------------------------------------------ output store
 def _open_group(path: Path) -> Any:
     import zarr
@@ -181,7 +188,6 @@ def output_store_layers(path: str | os.PathLike[str]) -> list[LayerData]:
     The contrast limits are ``(0, max)`` of one finished frame (its ``max_z`` projection
     when present, which is much smaller), so opening reads at most one frame's chunks.
     """
-    import dask.array as da
 
     path = Path(path)
     attributes = _group_attributes(path)
@@ -212,7 +218,7 @@ def output_store_layers(path: str | os.PathLike[str]) -> list[LayerData]:
     # A new dask name on every read: napari's chunk cache then never serves a chunk read
     # before a running job wrote it.
     opened = uuid.uuid4().hex
-    volumes = da.from_zarr(image, name=f"volrecon-volumes-{opened}")
+    volumes = _lazy(image, f"volrecon-volumes-{opened}")
     metadata = {
         "volrecon_store": os.fspath(path.resolve()),
         "volrecon_kind": "output",
@@ -261,7 +267,7 @@ def _projection_layers(path: Path, group: Any, names: list[str], units: list[str
         layer_translate = list(translation)
         layer_scale[axis] = scale[axis] * shape[axis]
         layer_translate[axis] = translation[axis] + scale[axis] * (shape[axis] - 1) / 2
-        data = da.from_zarr(array, name=f"volrecon-{key}-{opened}")
+        data = _lazy(array, f"volrecon-{key}-{opened}")
         layers.append((da.expand_dims(data, axis), {
             "name": f"{path.stem} {key}",
             "scale": layer_scale,
@@ -335,7 +341,7 @@ def model_store_layers(path: str | os.PathLike[str]) -> list[LayerData]:
 
     def array(key: str) -> Any:
         try:
-            return da.from_zarr(group[key])
+            return _lazy(group[key])
         except KeyError as exc:
             raise ModelStoreError(
                 f"{path}: {kind} model store lacks array '{key}'; the store is incomplete, "

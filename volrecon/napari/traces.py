@@ -18,6 +18,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from volrecon.errors import ConfigError, DataError, ShapeError
 
@@ -61,8 +62,8 @@ def _clip_box(low: np.ndarray, high: np.ndarray, shape: Sequence[int]) -> tuple[
                                                                               strict=True))
 
 
-def ball_region(center: Sequence[float], radius_um: float, shape: Sequence[int],
-                voxel_um: Sequence[float], *, name: str = "point") -> Region:
+def ball_region(center: ArrayLike, radius_um: float, shape: Sequence[int],
+                voxel_um: ArrayLike, *, name: str = "point") -> Region:
     """Voxels whose centres lie within `radius_um` of `center` (an ellipsoid in voxels).
 
     Parameters
@@ -186,7 +187,8 @@ def ellipse_vertices(corners_yx: Any, *, n_vertices: int = 64) -> np.ndarray:
     a = (corners[1] - corners[0]) / 2  # half of one side
     b = (corners[3] - corners[0]) / 2  # half of the other
     angle = np.linspace(0.0, 2 * np.pi, n_vertices, endpoint=False)[:, None]
-    return centre + np.cos(angle) * a + np.sin(angle) * b
+    polygon: np.ndarray = centre + np.cos(angle) * a + np.sin(angle) * b
+    return polygon
 
 
 def region_means(volumes: Any, regions: Sequence[Region]) -> Any:
@@ -221,7 +223,7 @@ def region_means(volumes: Any, regions: Sequence[Region]) -> Any:
     if is_dask:
         import dask.array as da
 
-        return da.stack(columns, axis=1)
+        return da.stack(columns, axis=1)  # type: ignore[no-untyped-call]
     return np.stack(columns, axis=1)
 
 
@@ -260,7 +262,8 @@ def delta_f_over_f(traces_tr: Any, *, baseline_percentile: float = 10.0) -> np.n
         r = int(np.flatnonzero(bad)[0])
         raise DataError(f"region {r}: baseline F0 = {baseline[r]:.3g} is not positive, so ΔF/F "
                         "is undefined; move the region onto signal or plot raw intensity")
-    return (traces - baseline) / baseline
+    relative: np.ndarray = (traces - baseline) / baseline
+    return relative
 
 
 def write_traces_csv(path: str | os.PathLike[str], traces_tr: Any, *, names: Sequence[str],

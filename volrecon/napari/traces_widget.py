@@ -2,12 +2,12 @@
 
 from __future__ import annotations
 
-import os
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
+from magicgui.types import FileDialogMode
 from magicgui.widgets import (
     CheckBox,
     ComboBox,
@@ -18,8 +18,10 @@ from magicgui.widgets import (
     PushButton,
     SpinBox,
 )
+from magicgui.widgets.bases import Widget
 
 from volrecon.errors import ConfigError, VolreconError
+from volrecon.napari._inputs import chosen_path
 from volrecon.napari._plot import PlotCanvas
 from volrecon.napari.regions import frame_times_s, layer_regions
 from volrecon.napari.traces import delta_f_over_f, region_means, write_traces_csv
@@ -62,7 +64,7 @@ def _compute(data: Any, regions: list[Any], names: list[str], times: np.ndarray,
                   regions_name=regions_name)
 
 
-class TimeTracesWidget(Container):
+class TimeTracesWidget(Container[Widget]):
     """Plot mean intensity over time in regions drawn on a 4-D (or 3-D) image layer.
 
     Points become balls of the chosen radius; rectangles, polygons and ellipses of a Shapes
@@ -85,7 +87,8 @@ class TimeTracesWidget(Container):
         self._dff = CheckBox(text="ΔF/F", value=False)
         self._percentile = FloatSpinBox(label="F0 percentile", min=0.0, max=100.0, value=10.0)
         self._plot_button = PushButton(text="Plot traces")
-        self._csv = FileEdit(label="CSV file", mode="w", filter="CSV (*.csv)")
+        self._csv = FileEdit(label="CSV file", mode=FileDialogMode.OPTIONAL_FILE,
+                             filter="CSV (*.csv)")
         self._export_button = PushButton(text="Export CSV")
         self._message = Label(value="")
         super().__init__(widgets=[self._image, self._regions, self._radius, self._thickness,
@@ -186,12 +189,12 @@ class TimeTracesWidget(Container):
 
     def export(self, _value: Any = None) -> Path | None:
         """Write the plotted traces to the chosen CSV file; returns its path (None on error)."""
-        text = os.fspath(self._csv.value).strip()
+        target = chosen_path(self._csv)
         try:
-            if text in ("", "."):
+            if target is None:
                 raise ConfigError("choose a CSV file to write first")
             traces, values, kind = self._values()
-            path = write_traces_csv(text, values, names=traces.names, time_s=traces.time_s,
+            path = write_traces_csv(target, values, names=traces.names, time_s=traces.time_s,
                                     value=kind)
         except (VolreconError, OSError) as exc:
             self._message.value = str(exc)

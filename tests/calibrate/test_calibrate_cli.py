@@ -109,6 +109,12 @@ def test_bad_input_gives_one_line_and_leaves_nothing(rng, tmp_path, gaussian, ca
                    str(tmp_path / "taken")])
     assert status == 2 and "not a volrecon model store" in capsys.readouterr().err
     assert (tmp_path / "taken" / "data.txt").read_text() == "keep me"
+    # Nor is a directory in the report's place.
+    (tmp_path / "other.report").mkdir()
+    status = main(["calibrate", good, "--depth-step", "2", "--pixel-size", "0.5", "--out",
+                   str(tmp_path / "other.zarr")])
+    assert status == 2 and "not a calibration report" in capsys.readouterr().err
+    assert not (tmp_path / "other.zarr").exists()
 
 
 def test_missing_required_option_is_a_usage_error(tmp_path, capsys):

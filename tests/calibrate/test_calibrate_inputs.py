@@ -42,6 +42,20 @@ def test_missing_damaged_and_unsuitable_files(rng, tmp_path):
         read_tiff_stack(tmp_path / "complex.tif")
 
 
+def test_cut_page_chain_is_refused_not_read_short(tmp_path):
+    data = np.arange(6 * 32 * 32, dtype=np.uint16).reshape(6, 32, 32)
+    with tifffile.TiffWriter(tmp_path / "pages.tif") as writer:
+        for page in data:
+            writer.write(page, photometric="minisblack")
+    with tifffile.TiffFile(tmp_path / "pages.tif") as tf:
+        third = tf.pages[2].offset
+    (tmp_path / "cut.tif").write_bytes((tmp_path / "pages.tif").read_bytes()[:third])
+    # Known truth: the file ends where the third page's directory should start; tifffile
+    # only logs that, and would otherwise hand back a shorter stack.
+    with pytest.raises(InputFileError, match="truncated or corrupt"):
+        read_tiff_stack(tmp_path / "cut.tif")
+
+
 @pytest.mark.parametrize("text", ["12,30\n40,5.5\n", "y_px,x_px\n12,30\n40,5.5\n",
                                   "x_px, y_px\n30,12\n5.5,40\n", "\n12 , 30\n\n40,5.5\n"])
 def test_positions_csv_forms(tmp_path, text):

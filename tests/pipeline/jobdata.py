@@ -99,4 +99,7 @@ def assert_bit_identical(a: dict[str, np.ndarray], b: dict[str, np.ndarray]) -> 
     assert a.keys() == b.keys()
     for key in a:
         assert a[key].dtype == b[key].dtype, key
-        assert a[key].tobytes() == b[key].tobytes(), f"{key} differs"
+        if a[key].tobytes() != b[key].tobytes():
+            frames = [t for t in range(a[key].shape[0])
+                      if a[key][t].tobytes() != b[key][t].tobytes()]
+            raise AssertionError(f"{key} differs at frames {frames}")

@@ -37,6 +37,7 @@ __all__ = [
 
 #: Exceptions a damaged TIFF raises (TiffFileError is a ValueError; a cut header a struct.error).
 _TIFF_ERRORS: tuple[type[BaseException], ...] = (ValueError, struct.error, OSError, KeyError)
+_READ_ERRORS: tuple[type[BaseException], ...] = (*_TIFF_ERRORS, RuntimeError)
 _GLOB_CHARACTERS = frozenset("*?[")
 
 
@@ -98,7 +99,7 @@ class FrameSource(ABC):
             frames = self._read(start, stop)
         except InputFileError:
             raise
-        except (*_TIFF_ERRORS, RuntimeError) as exc:
+        except _READ_ERRORS as exc:
             raise InputFileError(
                 f"{self.description}: cannot read frames {start}:{stop} ({exc}); check that the "
                 "file is complete and unchanged"
@@ -116,18 +117,20 @@ class FrameSource(ABC):
         Each chunk is one task calling :meth:`read` on this (picklable) reader, so the array
         works with every dask scheduler, processes and distributed included.
         """
-        import dask
         import dask.array as da
+        from dask.delayed import delayed
 
         if frames_per_chunk < 1:
             raise ShapeError(f"frames_per_chunk must be at least 1; got {frames_per_chunk}")
         blocks = []
         for start in range(0, self.n_frames, frames_per_chunk):
             stop = min(start + frames_per_chunk, self.n_frames)
-            blocks.append(da.from_delayed(dask.delayed(self.read, pure=True)(start, stop),
-                                          shape=(stop - start, *self.shape[1:]), dtype=self.dtype,
-                                          meta=np.empty((0, 0, 0), dtype=self.dtype)))
-        return da.concatenate(blocks, axis=0)
+            task = delayed(self.read, pure=True)(start, stop)
+            blocks.append(da.from_delayed(  # type: ignore[no-untyped-call]
+                task, shape=(stop - start, *self.shape[1:]), dtype=self.dtype,
+                meta=np.empty((0, 0, 0), dtype=self.dtype)))
+        result: da.Array = da.concatenate(blocks, axis=0)  # type: ignore[no-untyped-call]
+        return result
 
 
 # --------------------------------------------------------------------------------------- TIFF
@@ -174,7 +177,8 @@ class TiffFrames(FrameSource):
     def _read(self, start: int, stop: int) -> np.ndarray:
         if self.data_offset is not None:
             frame_bytes = self.shape[1] * self.shape[2] * self.dtype.itemsize
-            mapped = np.memmap(self.path, dtype=self.dtype.newbyteorder(self.byte_order),
+            order: Any = self.byte_order
+            mapped: Any = np.memmap(self.path, dtype=self.dtype.newbyteorder(order),
                                mode="r", offset=self.data_offset + start * frame_bytes,
                                shape=(stop - start, *self.shape[1:]))
             try:
@@ -254,7 +258,8 @@ def _inspect_tiff(path: str) -> tuple[tuple[int, int, int], np.dtype[Any], int |
         logger.removeHandler(handler)
     if messages:
         raise InputFileError(f"{path}: damaged TIFF ({messages[0]}); copy it again")
-    return (n_pages, *frame_shape), dtype.newbyteorder("="), offset, byte_order  # type: ignore[return-value]
+    shape = (n_pages, frame_shape[0], frame_shape[1])
+    return shape, dtype.newbyteorder("="), offset, byte_order
 
 
 class _ListHandler(logging.Handler):

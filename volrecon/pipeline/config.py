@@ -145,9 +145,10 @@ class JobConfig:
         return settings
 
     def with_compute(self, **changes: Any) -> JobConfig:
-        """A copy with other ``[compute]`` settings (checked against the schema)."""
+        """A copy with other ``[compute]`` settings (checked; None removes a key)."""
         document = copy.deepcopy(self.document)
         document["compute"].update(changes)
+        document["compute"] = {k: v for k, v in document["compute"].items() if v is not None}
         return job_from_dict(document, base_dir=self.base_dir, source=self.source)
 
 

@@ -90,7 +90,8 @@ def execute_tasks(tasks: Sequence[TaskSpec], context: TaskContext, compute: Comp
 # ---------------------------------------------------------------------------------- local
 def _execute_local(tasks: Sequence[TaskSpec], context: TaskContext, compute: ComputeSettings,
                    on_result: Callable[[FrameRecords], None]) -> None:
-    import dask
+    from dask.base import compute as dask_compute
+    from dask.delayed import delayed
 
     def posttask(key: Any, result: Any, dsk: Any, state: Any, worker_id: Any) -> None:
         if isinstance(result, FrameRecords):
@@ -105,18 +106,18 @@ def _execute_local(tasks: Sequence[TaskSpec], context: TaskContext, compute: Com
     elif compute.scheduler != "synchronous":
         raise ConfigError(f"unknown local scheduler {compute.scheduler!r}")
     wave = max(1, WAVE_TASKS_PER_WORKER * compute.workers)
-    shared = dask.delayed(context, pure=False)
+    shared = delayed(context, pure=False)
     # Passed to this computation only (not registered globally): (start, start_state,
     # pretask, posttask, finish), the form dask.local.get_async takes.
     callbacks = [(None, None, None, posttask, None)]
     try:
         for first in range(0, len(tasks), wave):
-            graph = [dask.delayed(run_task, pure=False)(shared, spec)
+            graph = [delayed(run_task, pure=False)(shared, spec)
                      for spec in tasks[first:first + wave]]
             kwargs: dict[str, Any] = {"scheduler": compute.scheduler, "callbacks": callbacks}
             if pool is not None:
                 kwargs.update(pool=pool, num_workers=compute.workers)
-            dask.compute(*graph, **kwargs)
+            dask_compute(*graph, **kwargs)  # type: ignore[no-untyped-call]
     finally:
         if pool is not None:
             pool.shutdown(wait=True, cancel_futures=True)
@@ -140,8 +141,8 @@ def _execute_distributed(tasks: Sequence[TaskSpec], context: TaskContext,
             return client.submit(run_task, shared, spec, pure=False,
                                  key=f"volrecon-task-{run_id}-{spec.index}")
 
-        futures = as_completed([submit(spec) for _, spec in zip(range(window), remaining,
-                                                                  strict=False)])
+        first = [submit(spec) for _, spec in zip(range(window), remaining, strict=False)]
+        futures = as_completed(first)  # type: ignore[no-untyped-call]
         try:
             for future in futures:
                 records = future.result()
@@ -149,7 +150,7 @@ def _execute_distributed(tasks: Sequence[TaskSpec], context: TaskContext,
                 on_result(records)
                 spec = next(remaining, None)
                 if spec is not None:
-                    futures.add(submit(spec))
+                    futures.add(submit(spec))  # type: ignore[no-untyped-call]
         except BaseException:
             outstanding = list(futures.futures)
             if outstanding:
@@ -162,13 +163,16 @@ def _open_client(compute: ComputeSettings) -> Iterator[Any]:
     from distributed import Client, LocalCluster
 
     if compute.scheduler == "local-cluster":
+        # Loopback only and no dashboard; the scheduler's small HTTP server (health, metrics)
+        # takes a free port instead of 8787, which may be taken (it would warn).
         with LocalCluster(n_workers=compute.workers, threads_per_worker=1, processes=True,
-                          host="127.0.0.1", dashboard_address=None) as cluster, \
-                Client(cluster) as client:
+                          host="127.0.0.1", dashboard_address=None,
+                          scheduler_kwargs={"dashboard_address": "127.0.0.1:0"}
+                          ) as cluster, Client(cluster) as client:  # type: ignore[no-untyped-call]
             yield client
         return
     try:
-        client = Client(compute.scheduler, timeout="30s")
+        client = Client(compute.scheduler, timeout="30s")  # type: ignore[no-untyped-call]
     except OSError as exc:
         raise ConfigError(
             f"compute.scheduler: cannot reach the dask scheduler at {compute.scheduler} "

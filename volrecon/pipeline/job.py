@@ -261,6 +261,9 @@ def _open_store(prepared: PreparedJob, *, restart: bool) -> JobStore:
     job = prepared.job
     path = job.output_path
     comparable = job.comparable_settings(prepared.fingerprints)
+    # The range actually reconstructed, so that "all frames" and [0, T] compare equal.
+    comparable["video"]["frames"] = [prepared.first_frame,
+                                     prepared.first_frame + prepared.n_frames]
     if restart:
         JobStore.wipe(path)
     elif path.exists() and is_job_store(path):
@@ -271,6 +274,7 @@ def _open_store(prepared: PreparedJob, *, restart: bool) -> JobStore:
             JobStore.wipe(path)
         else:
             store.check_settings(comparable, job_source=job.source)
+            _warn_on_other_version(store)
             expected = (prepared.n_frames, *prepared.model.shape_in)
             if tuple(store.image.shape) != expected:
                 raise StoreMismatchError(
@@ -285,8 +289,19 @@ def _open_store(prepared: PreparedJob, *, restart: bool) -> JobStore:
     return _create_store(prepared, comparable)
 
 
+def _warn_on_other_version(store: JobStore) -> None:
+    from volrecon import __version__
+
+    written_by = store.attributes.get("provenance", {}).get("volrecon_version")
+    if written_by != __version__:
+        logger.warning("%s: written by volrecon %s, continued by %s; frames computed now may "
+                       "differ from earlier ones in the last bits", store.path, written_by,
+                       __version__)
+
+
 def _create_store(prepared: PreparedJob, comparable: dict[str, Any]) -> JobStore:
-    import dask
+    from importlib.metadata import version
+
     import zarr
 
     from volrecon import __version__
@@ -309,7 +324,7 @@ def _create_store(prepared: PreparedJob, comparable: dict[str, Any]) -> JobStore
         "provenance": {"volrecon_version": __version__, "created": _now(),
                        "job_file": job.source, "python": platform.python_version(),
                        "numpy": np.__version__, "zarr": zarr.__version__,
-                       "dask": dask.__version__},
+                       "dask": version("dask")},
         "runs": [],
     }
     return JobStore.create(

@@ -30,15 +30,12 @@ import time
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import Any, Literal
 
 import numpy as np
 
 from volrecon.errors import ConfigError, InputFileError, StoreMismatchError
 from volrecon.io.ome_zarr import IMAGE_PATH, create_ome_image
-
-if TYPE_CHECKING:
-    import zarr
 
 __all__ = [
     "DIAGNOSTICS",
@@ -135,9 +132,9 @@ class JobStore:
         Its root group.
     """
 
-    def __init__(self, path: Path, group: zarr.Group) -> None:
+    def __init__(self, path: Path, group: Any) -> None:
         self.path = path
-        self.group = group
+        self.group: Any = group
         diagnostics = group["diagnostics"]
         self._diagnostics = {name: diagnostics[name] for name in DIAGNOSTICS}
 
@@ -168,7 +165,7 @@ class JobStore:
         if path.is_dir() and not any(path.iterdir()):
             path.rmdir()
         attributes = {"format_version": FORMAT_VERSION, "state": "creating", **metadata}
-        group = create_ome_image(path, shape_tzyx=(n_frames, *shape_zyx),
+        group: Any = create_ome_image(path, shape_tzyx=(n_frames, *shape_zyx),
                                  scale_tzyx=scale_tzyx, name="volumes",
                                  translation_tzyx=(0.0, depth_start_um, 0.0, 0.0),
                                  compression_level=compression_level,
@@ -195,7 +192,7 @@ class JobStore:
         return cls(path, zarr.open_group(zarr.storage.LocalStore(path), mode="r+"))
 
     @classmethod
-    def open(cls, path: str | os.PathLike[str], *, mode: str = "r+") -> JobStore:
+    def open(cls, path: str | os.PathLike[str], *, mode: Literal["r", "r+"] = "r+") -> JobStore:
         """Open an existing, completely created store.
 
         Raises
@@ -211,8 +208,8 @@ class JobStore:
                 f"{path}: not a volrecon output store (no '{STORE_ATTRIBUTE}' attribute); give "
                 "the [output] path of a job"
             )
-        group = zarr.open_group(zarr.storage.LocalStore(path, read_only=mode == "r"),
-                                mode=mode)
+        group: Any = zarr.open_group(zarr.storage.LocalStore(path, read_only=mode == "r"),
+                                     mode=mode)
         attributes = group.attrs[STORE_ATTRIBUTE]
         if attributes.get("format_version") != FORMAT_VERSION:
             raise InputFileError(
@@ -264,9 +261,9 @@ class JobStore:
         return int(self.image.shape[0])
 
     @property
-    def image(self) -> zarr.Array:
-        """The ``(T, Z, Y, X)`` image array."""
-        return self.group[IMAGE_PATH]  # type: ignore[return-value]
+    def image(self) -> Any:
+        """The ``(T, Z, Y, X)`` zarr image array."""
+        return self.group[IMAGE_PATH]
 
     def check_settings(self, comparable: dict[str, Any], *, job_source: str) -> None:
         """Refuse to resume with other settings than the store's.
@@ -312,11 +309,11 @@ class JobStore:
         for name in DIAGNOSTICS:
             if name != "status":
                 self._diagnostics[name][region] = getattr(records, name)
-        failures = self.failures()
-        for t in range(records.start, records.stop):
-            failures.pop(t, None)
-        if records.failures or len(failures) != len(self.failures()):
-            failures.update(records.failures)
+        old = self.failures()
+        failures = {t: reason for t, reason in old.items()
+                    if not records.start <= t < records.stop}
+        failures.update(records.failures)
+        if failures != old:
             self.group["diagnostics"].attrs["failures"] = {
                 str(k): v for k, v in sorted(failures.items())}
         self._diagnostics["status"][region] = records.status

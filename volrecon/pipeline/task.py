@@ -123,7 +123,7 @@ def run_task(context: TaskContext, spec: TaskSpec) -> FrameRecords:
     solver = context.solver
     threads = context.fft_threads or 1
     model = _load_model(context.model_path, context.model_fingerprint, context.device, threads)
-    group = zarr.open_group(zarr.storage.LocalStore(context.store_path), mode="r+")
+    group: Any = zarr.open_group(zarr.storage.LocalStore(context.store_path), mode="r+")
     image = group[IMAGE_PATH]
     projections = ({name: group[f"projections/{name}"] for name in PROJECTIONS}
                    if context.projections else {})

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import logging
+
 import numpy as np
 import pytest
 import tifffile
@@ -51,9 +53,19 @@ def test_cut_page_chain_is_refused_not_read_short(tmp_path):
         third = tf.pages[2].offset
     (tmp_path / "cut.tif").write_bytes((tmp_path / "pages.tif").read_bytes()[:third])
     # Known truth: the file ends where the third page's directory should start; tifffile
-    # only logs that, and would otherwise hand back a shorter stack.
+    # only logs that, and would otherwise hand back a shorter stack. Also when a caller has
+    # silenced tifffile's logger (as the CLI does).
     with pytest.raises(InputFileError, match="truncated or corrupt"):
         read_tiff_stack(tmp_path / "cut.tif")
+    logger = logging.getLogger("tifffile")
+    before = logger.level
+    logger.setLevel(logging.CRITICAL)
+    try:
+        with pytest.raises(InputFileError, match="truncated or corrupt"):
+            read_tiff_stack(tmp_path / "cut.tif")
+        assert logger.level == logging.CRITICAL
+    finally:
+        logger.setLevel(before)
 
 
 @pytest.mark.parametrize("text", ["12,30\n40,5.5\n", "y_px,x_px\n12,30\n40,5.5\n",

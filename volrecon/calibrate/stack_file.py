@@ -54,6 +54,11 @@ def read_tiff_stack(path: str | os.PathLike[str], *, what: str = "bead scan") ->
         raise InputFileError(f"{p}: no such file; check the path of the {what}")
     collect = _Collect()
     logger = logging.getLogger("tifffile")
+    # For the duration of the read, tifffile's warnings come here only: whatever level a
+    # caller set (the CLI silences tifffile) must not hide a broken page chain.
+    level, propagate = logger.level, logger.propagate
+    logger.setLevel(logging.WARNING)
+    logger.propagate = False
     logger.addHandler(collect)
     try:
         with tifffile.TiffFile(p) as tf:
@@ -67,6 +72,8 @@ def read_tiff_stack(path: str | os.PathLike[str], *, what: str = "bead scan") ->
                              "damaged or not a TIFF, export it again") from exc
     finally:
         logger.removeHandler(collect)
+        logger.setLevel(level)
+        logger.propagate = propagate
     broken = [m for m in collect.messages if "invalid" in m or "corrupt" in m]
     if broken:
         raise InputFileError(f"{p}: the {what} TIFF is truncated or corrupt ({broken[0]}); "

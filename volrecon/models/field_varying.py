@@ -271,7 +271,6 @@ class FieldVaryingPSF(PSFModel):
         return np.asarray(np.einsum("zk,zkyx->zyx", w, self.kernels_zkyx))
 
     def _forward(self, volumes: Array) -> Array:
-        xp = self.backend.xp
         shape = self.padded_shape
         total = None
         for k in range(self.n_kernels):
@@ -280,21 +279,22 @@ class FieldVaryingPSF(PSFModel):
             spectra *= self._spectra[:, k]
             part = spectra.sum(axis=-3)
             total = part if total is None else total + part
-        image = self.backend.irfft2(total, shape)
-        ny, nx = self.shape_out
-        return xp.ascontiguousarray(image[..., :ny, :nx])
+        return self.backend.irfft2_window(total, shape, self.shape_out)
 
     def _adjoint(self, images: Array) -> Array:
-        xp = self.backend.xp
+        be = self.backend
         shape = self.padded_shape
-        ny, nx = self.shape_out
-        spectrum = self.backend.rfft2(images, shape)[:, None]
+        spectrum = be.rfft2(images, shape)
+        be.xp.conjugate(spectrum, out=spectrum)
+        spectrum = spectrum[:, None]
         total = None
         for k in range(self.n_kernels):
-            planes = self.backend.irfft2(spectrum * self._spectra[:, k].conj(), shape)
-            part = planes[..., :ny, :nx] * self._weights[:, k]
+            # Correlation with g_{z,k}: index-reversed window of the convolution with conj(B̂).
+            planes = be.irfft2_window(spectrum * self._spectra[:, k], shape, self.shape_out,
+                                      reverse=True)
+            part = planes * self._weights[:, k]
             total = part if total is None else total + part
-        return xp.ascontiguousarray(total)
+        return be.xp.ascontiguousarray(total)
 
     def store_arrays(self) -> dict[str, np.ndarray]:
         return {"kernels": self.kernels_zkyx, "weights": self.weights}

@@ -131,23 +131,25 @@ class LowRankDepthPSF(PSFModel):
         return (weights @ self._spectra.reshape(r, py * px)).reshape(self.n_planes, py, px)
 
     def _forward(self, volumes: Array) -> Array:
-        xp = self.backend.xp
         shape = self.padded_shape
         b, z, ny, nx = volumes.shape
         mixed = (self._weights.T @ volumes.reshape(b, z, ny * nx)).reshape(b, self.rank, ny, nx)
         spectra = self.backend.rfft2(mixed, shape)
         spectra *= self._spectra
-        image = self.backend.irfft2(spectra.sum(axis=-3), shape)
-        return xp.ascontiguousarray(image[..., :ny, :nx])
+        return self.backend.irfft2_window(spectra.sum(axis=-3), shape, self.shape_out)
 
     def _adjoint(self, images: Array) -> Array:
-        xp = self.backend.xp
+        be = self.backend
         shape = self.padded_shape
-        spectrum = self.backend.rfft2(images, shape)
-        planes = self.backend.irfft2(spectrum[:, None] * self._spectra.conj(), shape)
         ny, nx = self.shape_out
-        cropped = xp.ascontiguousarray(planes[..., :ny, :nx]).reshape(-1, self.rank, ny * nx)
-        return (self._weights @ cropped).reshape(-1, self.n_planes, ny, nx)
+        # Correlation with each kernel as the index-reversed window of the convolution with
+        # conj(B̂), as in DepthConvolutionPSF (no conjugated copy of the spectra).
+        spectrum = be.rfft2(images, shape)
+        be.xp.conjugate(spectrum, out=spectrum)
+        planes = be.irfft2_window(spectrum[:, None] * self._spectra, shape, self.shape_out,
+                                  reverse=True)
+        return (self._weights @ planes.reshape(-1, self.rank, ny * nx)).reshape(
+            -1, self.n_planes, ny, nx)
 
     def store_arrays(self) -> dict[str, np.ndarray]:
         return {"kernels": self.kernels_ryx, "weights": self.weights_zr}

@@ -179,7 +179,30 @@ def _run_view(args: argparse.Namespace) -> int:
     return view(args.stores, monitor=args.monitor)
 
 
+def _add_demo(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    p = sub.add_parser(
+        "demo", help="run the whole job on built-in synthetic data",
+        description="Simulate a diffuser microscope imaging beads and a filament in a "
+        "hydrogel, calibrate its bead scan, reconstruct its video into OME-Zarr and score "
+        "the result against the truth.")
+    p.add_argument("outdir", metavar="OUTDIR", help="directory for the demo's files")
+    p.add_argument("--frames", type=int, default=40, help="video frames (default 40)")
+    p.add_argument("--no-progress", action="store_true", help="do not draw the progress bar")
+    p.set_defaults(run=_run_demo)
+
+
+def _run_demo(args: argparse.Namespace) -> int:
+    from volrecon.demo import run_demo
+    from volrecon.pipeline import progress_bar
+
+    with progress_bar(disable=True if args.no_progress else None) as progress:
+        result = run_demo(args.outdir, n_frames=args.frames, progress=progress)
+    print(result.summary())
+    return 0
+
+
 _COMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [  # type: ignore[type-arg]
+    _add_demo,
     _add_bench,
     _add_calibrate,
     _add_run,

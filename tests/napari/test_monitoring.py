@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from conftest import FAILED_FRAME, FINISHED, N_FRAMES
+from napari_stores import FAILED_FRAME, FINISHED, N_FRAMES
 
 from volrecon.errors import InputFileError
 from volrecon.napari.monitoring import format_duration, plot_series, read_job_snapshot

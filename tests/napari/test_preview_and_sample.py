@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import tifffile
-from conftest import SHAPE_ZYX, gaussian_psf
+from napari_stores import SHAPE_ZYX, gaussian_psf
 from scipy.signal import fftconvolve
 
 import volrecon

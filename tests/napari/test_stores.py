@@ -10,7 +10,8 @@ import dask.array as da
 import numpy as np
 import pytest
 import zarr
-from conftest import (
+from dask.callbacks import Callback
+from napari_stores import (
     DEPTH_START_UM,
     FAILED_FRAME,
     FINISHED,
@@ -20,7 +21,6 @@ from conftest import (
     gaussian_psf,
     make_output_store,
 )
-from dask.callbacks import Callback
 
 from volrecon.errors import InputFileError, ModelStoreError
 from volrecon.models import FieldVaryingPSF, Geometry, LowRankDepthPSF

@@ -6,7 +6,7 @@ import csv
 
 import numpy as np
 import pytest
-from conftest import FAILED_FRAME, FINISHED, N_FRAMES, SCALE_TZYX, SHAPE_ZYX, gaussian_psf
+from napari_stores import FAILED_FRAME, FINISHED, N_FRAMES, SCALE_TZYX, SHAPE_ZYX, gaussian_psf
 
 import volrecon
 from volrecon.napari.viewer import MONITOR_WIDGET, open_viewer
@@ -28,11 +28,18 @@ def _wait_worker(qtbot, worker):
     qtbot.waitUntil(lambda: worker is not None and not worker.is_running, timeout=WAIT_MS)
 
 
-def test_view_opens_a_store_with_time_slider_and_renders_it(make_napari_viewer,
+def _stop(qtbot, monitor):
+    """Stop a monitor's timer and let its last read finish (no thread outlives the test)."""
+    monitor.close_timer()
+    if monitor.worker is not None:
+        _wait_worker(qtbot, monitor.worker)
+
+
+def test_view_opens_a_store_with_time_slider_and_renders_it(make_napari_viewer, qtbot,
                                                             volrecon_plugin, output_store):
     # Shown (under Xvfb): only then does a canvas-only screenshot render (ECOSYSTEM.md §5).
     viewer = make_napari_viewer(show=True)
-    open_viewer([output_store.path], viewer=viewer)
+    open_viewer([output_store.path], viewer=viewer, monitor=True)
     layer = viewer.layers["volumes"]
     assert layer.data.shape == (N_FRAMES, *SHAPE_ZYX)
     assert tuple(layer.scale) == SCALE_TZYX
@@ -50,6 +57,9 @@ def test_view_opens_a_store_with_time_slider_and_renders_it(make_napari_viewer,
         # canvas that is dark without the layer.
         assert shot.max() > 200 and np.count_nonzero(shot.max(axis=-1) > 100) > 100
         assert np.abs(shot.astype(int) - empty).max() > 200
+    monitor = viewer.window.dock_widgets[f"{MONITOR_WIDGET} (volrecon)"]
+    qtbot.waitUntil(lambda: monitor.snapshot is not None, timeout=WAIT_MS)
+    _stop(qtbot, monitor)
 
 
 def test_view_command_refuses_a_folder_that_is_not_a_store(tmp_path, capsys):
@@ -75,11 +85,12 @@ def test_preview_widget_adds_volume_and_residual_layers(make_napari_viewer, volr
                                                         qtbot, raw_video):
     model_path, frames = raw_video
     viewer = make_napari_viewer(show=False)
-    viewer.add_image(frames, name="raw", scale=SCALE_TZYX[::2])
+    viewer.add_image(frames, name="raw", scale=(SCALE_TZYX[0], *SCALE_TZYX[2:]))
+    viewer.dims.set_point(0, 1 * SCALE_TZYX[0])
     _, widget = viewer.window.add_plugin_dock_widget("volrecon", "Preview")
     widget._model_path.value = model_path
     widget._source.value = "raw"
-    widget._index.value = 1
+    assert widget._index.value == 1  # the frame on screen
     widget._method.value = "fista"
     widget._iterations.value = 40
     _wait_for(qtbot, widget, widget.start)
@@ -138,7 +149,7 @@ def test_monitor_reads_a_half_finished_store(make_napari_viewer, volrecon_plugin
     np.testing.assert_array_equal(residual_axis.lines[0].get_data()[1],
                                   output_store.residual[done])
     assert iterations_axis.lines[1].get_data()[0].tolist() == [FAILED_FRAME]  # failed marker
-    widget.close_timer()
+    _stop(qtbot, widget)
     assert not widget._timer.isActive()
 
 
@@ -171,6 +182,7 @@ def test_monitor_shows_new_frames_in_the_viewer(make_napari_viewer, volrecon_plu
     qtbot.waitUntil(lambda: widget.snapshot.status.done == FINISHED + 3, timeout=WAIT_MS)
     # The layer was given fresh data, so the frame on screen is read again, not from cache.
     assert layer.get_value(where) == 7.25
+    _stop(qtbot, widget)
 
 
 def test_trace_of_a_rectangle_matches_numpy_mean(make_napari_viewer, volrecon_plugin, qtbot,

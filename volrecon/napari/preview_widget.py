@@ -133,7 +133,14 @@ class PreviewWidget(Container[Widget]):
         self._source.reset_choices()
 
     def _update_enabled(self, _value: Any = None) -> None:
-        self._frame_file.enabled = self._source.value == FROM_FILE
+        from_file = self._source.value == FROM_FILE
+        self._frame_file.enabled = from_file
+        if not from_file and self._source.value in self._viewer.layers:
+            # Start from the frame on screen.
+            layer = self._viewer.layers[self._source.value]
+            if layer.ndim > 2:
+                here = layer.world_to_data(self._viewer.dims.point)[0]
+                self._index.value = int(np.clip(np.rint(here), 0, layer.data.shape[0] - 1))
 
     def _request(self) -> _Request:
         model_path = chosen_path(self._model_path)

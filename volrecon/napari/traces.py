@@ -84,6 +84,12 @@ def ball_region(center: ArrayLike, radius_um: float, shape: Sequence[int],
     ------
     ConfigError
         If the radius is not positive or the centre lies outside the grid.
+
+    Examples
+    --------
+    >>> region = ball_region((2, 5, 5), 1.0, (4, 10, 10), (2.0, 1.0, 1.0))
+    >>> region.n_voxels  # the centre and its 4 lateral neighbours; planes are 2 µm away
+    5
     """
     c = np.asarray(center, dtype=np.float64)
     size = np.asarray(voxel_um, dtype=np.float64)
@@ -140,6 +146,13 @@ def polygon_region(vertices_yx: Any, shape: Sequence[int], *, planes: tuple[int,
     ConfigError
         If the polygon has fewer than 3 corners, covers no pixel centre of the grid, or the
         planes are outside the volume.
+
+    Examples
+    --------
+    >>> square = [(1.5, 1.5), (1.5, 4.5), (4.5, 4.5), (4.5, 1.5)]
+    >>> region = polygon_region(square, (3, 8, 8), planes=(1, 2))
+    >>> region.box, region.n_voxels
+    ((slice(1, 2, None), slice(1, 6, None), slice(1, 6, None)), 9)
     """
     vertices = np.asarray(vertices_yx, dtype=np.float64)
     if vertices.ndim != 2 or vertices.shape[1] != 2 or len(vertices) < 3:
@@ -206,6 +219,14 @@ def region_means(volumes: Any, regions: Sequence[Region]) -> Any:
     array of shape (T, R), float64
         numpy for numpy input; a lazy dask array for dask input, reading only the chunks
         that overlap the regions. A frame not yet reconstructed (NaN) gives NaN.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> frames = np.arange(2 * 4 * 4, dtype=np.float32).reshape(2, 4, 4)
+    >>> square = polygon_region([(0.5, 0.5), (0.5, 2.5), (2.5, 2.5), (2.5, 0.5)], (4, 4))
+    >>> region_means(frames, [square]).ravel().tolist()  # pixels 5, 6, 9, 10 of each frame
+    [7.5, 23.5]
     """
     if not regions:
         raise ConfigError("no regions: add points or shapes to the regions layer first")
@@ -246,6 +267,11 @@ def delta_f_over_f(traces_tr: Any, *, baseline_percentile: float = 10.0) -> np.n
     ------
     DataError
         If a region's baseline is not positive (ΔF/F is undefined there).
+
+    Examples
+    --------
+    >>> delta_f_over_f([[10.0], [15.0], [20.0]], baseline_percentile=0).ravel().tolist()
+    [0.0, 0.5, 1.0]
     """
     traces = np.asarray(traces_tr, dtype=np.float64)
     if not 0 <= baseline_percentile <= 100:

@@ -10,6 +10,7 @@ from scipy.signal import fftconvolve
 
 import volrecon
 from volrecon.errors import ConfigError, ShapeError
+from volrecon.io import FrameCorrection
 from volrecon.napari.preview import PreviewSettings, preview_frame, read_frame
 from volrecon.napari.sample import hydrogel_sample
 
@@ -32,7 +33,7 @@ def test_preview_finds_the_bead_and_its_residual_is_b_minus_av(model):
     dark = np.full(frame.shape, 100.0, np.float32)
     before = frame.copy()
     result = preview_frame(frame, model, PreviewSettings(method="fista", iterations=60),
-                           dark_yx=dark)
+                           correction=FrameCorrection.build(dark_yx=dark))
     np.testing.assert_array_equal(frame, before)  # input untouched
     assert result.volume_zyx.shape == SHAPE_ZYX and result.volume_zyx.dtype == np.float32
     # Known synthetic truth: the bead sits at voxel (0, 8, 15).
@@ -47,6 +48,17 @@ def test_preview_finds_the_bead_and_its_residual_is_b_minus_av(model):
     assert result.info.iterations <= 60 and result.settings.label() == "fista 60 it"
 
 
+def test_preview_bins_a_full_resolution_frame_like_the_job(model):
+    frame = _bead_frame(model)
+    # Each model pixel split into 2 × 2 camera pixels of the same value: binning by 2
+    # (block mean) gives the frame back exactly.
+    raw = np.repeat(np.repeat(frame, 2, axis=0), 2, axis=1)
+    settings = PreviewSettings(method="fista", iterations=30)
+    binned = preview_frame(raw, model, settings, correction=FrameCorrection.build(binning=2))
+    direct = preview_frame(frame, model, settings)
+    np.testing.assert_allclose(binned.volume_zyx, direct.volume_zyx, rtol=1e-5, atol=1e-5)
+
+
 def test_read_frame_from_a_tiff(tmp_path, rng):
     frames = rng.integers(0, 4000, (3, 20, 24), dtype=np.uint16)
     tifffile.imwrite(tmp_path / "raw.tif", frames, photometric="minisblack")
@@ -58,8 +70,11 @@ def test_read_frame_from_a_tiff(tmp_path, rng):
 def test_preview_refuses_bad_input(model):
     with pytest.raises(ShapeError, match=r"frame has shape \(5, 5\).*model's sensor"):
         preview_frame(np.ones((5, 5)), model, PreviewSettings())
-    with pytest.raises(ShapeError, match="dark image has shape"):
-        preview_frame(np.ones(SHAPE_ZYX[1:]), model, PreviewSettings(), dark_yx=np.ones((2, 2)))
+    with pytest.raises(ShapeError, match="but the dark/flat images"):
+        preview_frame(np.ones(SHAPE_ZYX[1:]), model, PreviewSettings(),
+                      correction=FrameCorrection.build(dark_yx=np.ones((2, 2))))
+    with pytest.raises(ShapeError, match="must have 2 axes"):
+        preview_frame(np.ones(SHAPE_ZYX), model, PreviewSettings())
     with pytest.raises(ConfigError, match="method must be one of"):
         PreviewSettings(method="magic")
     with pytest.raises(ConfigError, match="iterations must be at least 1"):

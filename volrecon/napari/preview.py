@@ -13,6 +13,7 @@ from volrecon.solvers import reconstruct
 from volrecon.solvers.reconstruct import METHODS
 
 if TYPE_CHECKING:
+    from volrecon.io.correct import FrameCorrection
     from volrecon.models.base import PSFModel
     from volrecon.solvers.info import SolveInfo
 
@@ -95,38 +96,39 @@ def read_frame(path: str | os.PathLike[str], index: int = 0) -> np.ndarray:
 
 
 def preview_frame(frame_yx: Any, model: PSFModel, settings: PreviewSettings, *,
-                  dark_yx: Any = None, threads: int | None = None) -> PreviewResult:
+                  correction: FrameCorrection | None = None, threads: int | None = None
+                  ) -> PreviewResult:
     """Reconstruct one frame and its residual image.
 
     Parameters
     ----------
     frame_yx : array_like of shape (Y, X)
-        Raw or corrected camera frame on the model's sensor grid. Not modified.
+        Camera frame. Not modified.
     model : PSFModel
         The PSF model.
     settings : PreviewSettings
         Solver settings.
-    dark_yx : array_like of shape (Y, X), optional
-        Camera offset image subtracted first.
+    correction : FrameCorrection, optional
+        Dark subtraction, flat field and binning applied first, as a job's ``[video]``
+        settings do; the corrected frame must be on the model's sensor grid.
     threads : int, optional
         FFT threads (default: all cores).
 
     Raises
     ------
     ShapeError
-        If the frame (or dark image) is not on the model's sensor grid.
+        If the (corrected) frame is not on the model's sensor grid, or does not fit the
+        correction's images or binning.
     """
     frame = np.array(frame_yx, dtype=np.float32)
+    if frame.ndim != 2:
+        raise ShapeError(f"frame must have 2 axes (Y, X); got shape {frame.shape}")
+    if correction is not None:
+        frame = correction.apply(frame[None])[0]
     if frame.shape != tuple(model.shape_out):
-        raise ShapeError(f"frame has shape {frame.shape} but the model's sensor is "
-                         f"{tuple(model.shape_out)}; choose a frame from the model's camera "
-                         "(bin the video to the model grid first)")
-    if dark_yx is not None:
-        dark = np.asarray(dark_yx, dtype=np.float32)
-        if dark.shape != frame.shape:
-            raise ShapeError(f"dark image has shape {dark.shape}, the frame {frame.shape}; use "
-                             "the dark frames of the same camera settings")
-        frame -= dark
+        raise ShapeError(f"frame has shape {frame.shape} (after correction) but the model's "
+                         f"sensor is {tuple(model.shape_out)}; choose a frame from the model's "
+                         "camera, or set the binning the model was calibrated with")
     volume, info = reconstruct(frame, model, method=settings.method,
                                iterations=settings.iterations, tv=settings.tv, l1=settings.l1,
                                threads=threads, return_info=True)

@@ -48,6 +48,7 @@ class _Request:
     layer_name: str
     index: int
     dark_path: Path | None
+    binning: int
 
 
 @dataclass(frozen=True)
@@ -100,6 +101,8 @@ class PreviewWidget(Container[Widget]):
         self._dark_file = FileEdit(label="dark image", mode=FileDialogMode.EXISTING_FILE,
                                    filter="TIFF (*.tif *.tiff)",
                                    tooltip="optional: mean dark frame subtracted first")
+        self._binning = SpinBox(label="binning", min=1, max=64, value=1,
+                                tooltip="lateral binning of the raw frame, as in the job")
         self._method = ComboBox(label="method", choices=list(METHODS), value="admm")
         self._iterations = SpinBox(label="iterations", min=1, max=100_000, value=50)
         self._tv = LineEdit(label="tv", value="0")
@@ -108,8 +111,9 @@ class PreviewWidget(Container[Widget]):
         self._run = PushButton(text="Reconstruct")
         self._message = Label(value="")
         super().__init__(widgets=[self._model_path, self._source, self._frame_file, self._index,
-                                  self._dark_file, self._method, self._iterations, self._tv,
-                                  self._l1, self._grid, self._run, self._message])
+                                  self._dark_file, self._binning, self._method,
+                                  self._iterations, self._tv, self._l1, self._grid, self._run,
+                                  self._message])
         self._run.changed.connect(self.start)
         self._source.changed.connect(self._update_enabled)
         self._viewer.layers.events.inserted.connect(self._refresh_sources)
@@ -165,7 +169,8 @@ class PreviewWidget(Container[Widget]):
             data, name = layer.data, layer.name
         return _Request(model_path=model_path, settings=settings, frame_path=frame_path,
                         layer_data=data, layer_name=name, index=int(self._index.value),
-                        dark_path=chosen_path(self._dark_file))
+                        dark_path=chosen_path(self._dark_file),
+                        binning=int(self._binning.value))
 
     # ------------------------------------------------------------------------------- work
     def _model(self, path: Path) -> PSFModel:
@@ -182,7 +187,7 @@ class PreviewWidget(Container[Widget]):
 
     def _compute(self, request: _Request) -> tuple[PreviewResult, PSFModel] | _Failure:
         """Runs in the worker thread."""
-        from volrecon.io import read_image
+        from volrecon.io import FrameCorrection, read_image
 
         try:
             model = self._model(request.model_path)
@@ -191,7 +196,9 @@ class PreviewWidget(Container[Widget]):
             else:
                 frame = _layer_frame(request.layer_data, request.index, request.layer_name)
             dark = None if request.dark_path is None else read_image(request.dark_path)
-            return preview_frame(frame, model, request.settings, dark_yx=dark), model
+            correction = FrameCorrection.build(dark_yx=dark, binning=request.binning,
+                                               name_dark=str(request.dark_path))
+            return preview_frame(frame, model, request.settings, correction=correction), model
         except VolreconError as exc:
             return _Failure(str(exc))
 

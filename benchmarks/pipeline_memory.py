@@ -3,12 +3,13 @@
 Prints (not a test):
 - peak resident memory of a run over N frames and over 10 N frames (each in a fresh process,
   threaded scheduler, so one process holds everything), and their ratio;
-- frames per second with 1 and with 2 workers on the same job, and the speed-up.
+- frames per second with 1 and with 2 workers on the same job, and the speed-up (time from
+  the start of computing to the last task, so store creation and start-up are left out).
 
 Usage::
 
-    .venv/bin/python benchmarks/pipeline_memory.py [--frames 24] [--factor 10]
-        [--size 16 128 128] [--iterations 20] [--json]
+    .venv/bin/python benchmarks/pipeline_memory.py [--frames 16] [--factor 10]
+        [--size 16 128 128] [--iterations 10] [--json]
 """
 
 from __future__ import annotations
@@ -26,9 +27,10 @@ _CHILD = r"""
 import json, resource, sys, time
 from volrecon.pipeline import load_job, run_job
 job = load_job(sys.argv[1]).with_compute(workers=int(sys.argv[2]))
-result = run_job(job)
+events = []
+result = run_job(job, progress=events.append)
 print(json.dumps({"frames": result.total, "seconds": result.seconds,
-                  "frames_per_second": result.computed / result.seconds,
+                  "frames_per_second": events[-1].frames_per_second,  # compute time only
                   "peak_rss_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}))
 """
 
@@ -63,7 +65,7 @@ def _make_job(folder: Path, *, n_frames: int, size_zyx: tuple[int, int, int],
         "video": {"path": f"{name}.tif"},
         "solver": {"method": "admm", "iterations": iterations, "tv": 1e-3, "tol": 0.0},
         "output": {"path": f"{name}.zarr", "time_interval_s": 0.05, "max_projections": True},
-        "compute": {"scheduler": "threads", "workers": 1, "frames_per_task": 8},
+        "compute": {"scheduler": "threads", "workers": 1, "frames_per_task": 4},
     }
     job = folder / f"{name}.toml"
     job.write_text(tomli_w.dumps(document))
@@ -84,11 +86,11 @@ def _measure(job: Path, workers: int, *, fresh: bool) -> dict[str, float]:
 
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--frames", type=int, default=24, help="frames of the short run")
+    parser.add_argument("--frames", type=int, default=16, help="frames of the short run")
     parser.add_argument("--factor", type=int, default=10, help="long run = factor x frames")
     parser.add_argument("--size", type=int, nargs=3, default=(16, 128, 128),
                         metavar=("Z", "Y", "X"))
-    parser.add_argument("--iterations", type=int, default=20)
+    parser.add_argument("--iterations", type=int, default=10)
     parser.add_argument("--json", action="store_true", help="print the figures as JSON")
     args = parser.parse_args(argv)
     rng = np.random.default_rng(0)

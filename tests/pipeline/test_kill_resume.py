@@ -87,6 +87,8 @@ def test_interrupt_then_sigkill_then_resume_bit_identical(slow_job, capsys):
     # 2. Resume in a new process and SIGKILL it mid-way: the lock file stays behind.
     child = _start(slow_job)
     _wait_for_done(store, child, at_least=after_interrupt.done + 2)
+    live = store_status(store)
+    assert live.running and live.holder["pid"] == child.pid and live.state == "running"
     child.kill()
     child.communicate(timeout=60)
     stale = read_lock(store)

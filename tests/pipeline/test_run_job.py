@@ -219,6 +219,22 @@ def test_failed_frames_recorded_and_job_continues(job_files):
     assert "exceeds max_residual" in group["diagnostics"].attrs["failures"]["0"]
 
 
+def test_gpu_refused_before_any_write_without_one(job_files):
+    from volrecon.backend import get_backend
+    from volrecon.errors import BackendError
+
+    try:
+        get_backend("gpu")
+    except BackendError:
+        pass
+    else:
+        pytest.skip("a GPU is available here")
+    job = load_job(job_files.write_job(compute={"device": "gpu"}))
+    with pytest.raises(BackendError, match="gpu"):
+        run_job(job)
+    assert not job.output_path.exists()
+
+
 def test_moved_store_keeps_working(job_files, tmp_path):
     job = load_job(job_files.write_job())
     run_job(job)

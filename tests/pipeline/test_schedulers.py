@@ -62,3 +62,19 @@ def test_fft_threads_chosen_in_one_place(job_files):
     assert fft_threads_per_task(job.with_compute(scheduler="synchronous").compute) == (
         split_threads(1))
     assert np.all([split_threads(w) * w <= max(split_threads(1), w) for w in (1, 2, 3, 8)])
+
+
+def test_many_waves_same_result(job_files, monkeypatch):
+    from volrecon.pipeline import execute
+
+    job = load_job(job_files.write_job(compute={"scheduler": "synchronous", "workers": 1,
+                                                "frames_per_task": 12}))
+    run_job(job)
+    reference = read_store_arrays(job.output_path)
+    # Tasks hold whole chains of warm_start_frames = 3: 4 tasks, here in 2 waves of 2.
+    monkeypatch.setattr(execute, "WAVE_TASKS_PER_WORKER", 1)
+    events = []
+    run_job(job.with_compute(scheduler="threads", workers=2, frames_per_task=1), restart=True,
+            progress=events.append)
+    assert [e.done for e in events] == [3, 6, 9, 12]
+    assert_bit_identical(read_store_arrays(job.output_path), reference)

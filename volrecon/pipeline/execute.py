@@ -30,8 +30,9 @@ __all__ = ["execute_tasks", "fft_threads_per_task"]
 
 logger = logging.getLogger(__name__)
 
-#: Tasks per wave on the local schedulers, per worker (waves keep graphs small).
-WAVE_TASKS_PER_WORKER = 16
+#: Tasks per wave on the local schedulers, per worker: graphs stay small, and the idle tail
+#: at the end of a wave (at most one task per worker) stays a small fraction of it.
+WAVE_TASKS_PER_WORKER = 64
 #: Futures in flight on dask.distributed, per worker thread.
 WINDOW_TASKS_PER_THREAD = 2
 

@@ -4,7 +4,9 @@ from __future__ import annotations
 
 import json
 import shutil
+from pathlib import Path
 
+import jsonschema
 import numpy as np
 import pytest
 import tifffile
@@ -69,6 +71,11 @@ def test_store_equals_direct_solver_calls_and_is_valid_ome_zarr(job_files):
     assert attributes["state"] == "ready" and attributes["settings"]["solver"]["iterations"] == 8
     assert set(attributes["fingerprints"]) == {"model.path", "video.path", "video.dark"}
     assert attributes["provenance"]["volrecon_version"] == volrecon.__version__
+    # The store's attributes follow their published JSON Schema (2020-12).
+    schema = json.loads((Path(volrecon.__file__).parent / "schemas" /
+                         "output-store.schema.json").read_text())
+    jsonschema.Draft202012Validator.check_schema(schema)
+    jsonschema.validate(dict(group.attrs), schema, cls=jsonschema.Draft202012Validator)
     (run,) = attributes["runs"]
     assert run["outcome"] == "complete" and run["frames_done_after"] == N_FRAMES
     assert run["ended_epoch_s"] >= run["started_epoch_s"]

@@ -1,6 +1,7 @@
 """The output store of a job: OME-Zarr image, per-frame diagnostics, settings and provenance.
 
-Layout (zarr v3; ``schemas/output-store`` in the README describes it for users)::
+Layout (zarr v3; attributes in ``schemas/output-store.schema.json``; for users in
+``workflows/README.md``)::
 
     volumes.zarr/                      group; attributes "ome" (OME-NGFF 0.5) and "volrecon"
       0                                (T, Z, Y, X) float32, one frame per chunk, NaN = not done

@@ -145,8 +145,8 @@ def run_demo(directory: str | os.PathLike[str], *, n_frames: int = 40, rng: int 
     t0 = time.perf_counter()
     result = run_job(load_job(job_path), progress=progress)
     seconds = time.perf_counter() - t0
-    store = zarr.open_group(zarr.storage.LocalStore(result.store_path), mode="r")
-    volumes = np.asarray(store["0"][...])
+    volumes = np.asarray(zarr.open_array(zarr.storage.LocalStore(result.store_path), path="0",
+                                         mode="r")[...])
     score = score_reconstruction(volumes, np.load(scenario.files["truth_volumes"]),
                                  np.load(scenario.files["truth_positions"]))
     return DemoResult(out, job_path, model_path, out / "volumes.zarr", result.done,

@@ -73,7 +73,7 @@ def _time_to_target(run: Any, optimum: float, *, limit: int = 5000) -> tuple[flo
     wall-clock seconds of a solve with that many iterations: (seconds, iterations)."""
 
     def reached(n: int) -> bool:
-        return (run(n) - optimum) / abs(optimum) <= TARGET
+        return bool((run(n) - optimum) / abs(optimum) <= TARGET)
 
     high = 2
     while not reached(high) and high < limit:
@@ -119,7 +119,7 @@ def compare(frame: np.ndarray, model: PSFModel, *, tv: float, l1: float,
         v = x.reshape(nz, ny, nx)
         return 0.5 * float(r @ r) + l1 * float(x.sum()) + (tv * tv_value(v, 1.0) if tv else 0.0)
 
-    clock = {"start": 0.0, "excluded": 0.0, "reached": None, "iterations": 0}
+    clock: dict[str, Any] = {"start": 0.0, "excluded": 0.0, "reached": None, "iterations": 0}
 
     def callback(x: np.ndarray, *args: Any) -> None:
         pause = time.perf_counter()
@@ -148,7 +148,7 @@ def compare(frame: np.ndarray, model: PSFModel, *, tv: float, l1: float,
                     return l1 * float(np.abs(x).sum())
 
                 def prox(self, x: np.ndarray, tau: float) -> np.ndarray:
-                    return self.box.prox(self.l1.prox(x, tau), tau)
+                    return np.asarray(self.box.prox(self.l1.prox(x, tau), tau))
 
             ProximalGradient(pyproximal.L2(Op=op, b=b), _NonnegL1(), x0=x0, tau=1.0 / lipschitz,
                              acceleration="fista", niter=10**6, callback=callback)

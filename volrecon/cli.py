@@ -95,6 +95,9 @@ def _add_run(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
     p.add_argument("--restart", action="store_true",
                    help="delete the job's existing store and start over (after checking the job)")
     p.add_argument("--no-progress", action="store_true", help="do not draw the progress bar")
+    p.add_argument("--estimate", action="store_true",
+                   help="reconstruct a few frames and print the expected duration and store "
+                   "size of the whole job; writes nothing")
     p.set_defaults(run=_run_run)
 
 
@@ -105,6 +108,11 @@ def _run_run(args: argparse.Namespace) -> int:
     from volrecon.pipeline.config import load_job
 
     job = load_job(args.job)
+    if args.estimate:
+        from volrecon.pipeline.estimate import estimate_job
+
+        print(estimate_job(job).summary())
+        return 0
 
     def stop(signum: int, frame: object) -> None:
         raise KeyboardInterrupt

@@ -32,7 +32,7 @@ if TYPE_CHECKING:
     from volrecon.models.base import PSFModel
     from volrecon.pipeline.config import SolverSettings
 
-__all__ = ["TaskContext", "TaskSpec", "run_task"]
+__all__ = ["TaskContext", "TaskSpec", "run_task", "solve_frame"]
 
 logger = logging.getLogger(__name__)
 
@@ -145,7 +145,7 @@ def run_task(context: TaskContext, spec: TaskSpec) -> FrameRecords:
         for offset, frame in enumerate(frames):
             t = chain_start + offset
             i = t - spec.start
-            volume, info, reason = _solve(frame, model, solver, state, threads)
+            volume, info, reason = solve_frame(frame, model, solver, state, threads)
             if reason is None:
                 state = info.state if solver.warm_start else None
                 records["status"][i] = STATUS_DONE
@@ -170,7 +170,7 @@ def run_task(context: TaskContext, spec: TaskSpec) -> FrameRecords:
     return FrameRecords(start=spec.start, stop=spec.stop, failures=failures, **records)
 
 
-def _solve(frame: np.ndarray, model: PSFModel, solver: SolverSettings, state: Any,
+def solve_frame(frame: np.ndarray, model: PSFModel, solver: SolverSettings, state: Any,
            threads: int) -> tuple[Any, Any, str | None]:
     """Reconstruct one frame: (volume, info, None) or (None, info or None, failure reason)."""
     from volrecon.solvers import reconstruct

@@ -12,7 +12,7 @@ import volrecon
 from volrecon.errors import ConfigError, ShapeError
 from volrecon.io import FrameCorrection
 from volrecon.napari.preview import PreviewSettings, preview_frame, read_frame
-from volrecon.napari.sample import hydrogel_sample
+from volrecon.napari.sample import demo_sample, hydrogel_sample, sample_cache_folder
 
 
 @pytest.fixture
@@ -95,3 +95,23 @@ def test_hydrogel_sample_reconstructs_the_simulated_scene():
     # for other noise draws while failing for a misplaced or empty volume (~0).
     correlation = np.corrcoef(recon.ravel(), truth.ravel())[0, 1]
     assert correlation > 0.3
+
+
+@pytest.mark.slow
+def test_demo_sample_runs_the_demo_once_and_opens_its_store(tmp_path, monkeypatch):
+    import dask.array as da
+
+    monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "cache"))
+    assert sample_cache_folder() == tmp_path / "cache" / "volrecon" / "napari-demo"
+    layers = demo_sample(n_frames=2)
+    names = [kwargs["name"] for _, kwargs, _ in layers]
+    assert names[0] == "volumes" and "demo raw video" in names and "demo truth" in names
+    assert any(n.startswith("demo psf-model") for n in names)
+    volumes, kwargs, _ = layers[0]
+    assert isinstance(volumes, da.Array) and volumes.shape[0] == 2 and volumes.ndim == 4
+    assert kwargs["metadata"]["volrecon_store"].startswith(str(tmp_path / "cache"))
+    truth = layers[names.index("demo truth")][0]
+    assert truth.shape == volumes.shape  # the same grid: the volumes overlay the truth
+    # Second call: the finished demo is reused (nothing recomputed, same store).
+    again = demo_sample(n_frames=2)
+    assert again[0][1]["metadata"]["volrecon_store"] == kwargs["metadata"]["volrecon_store"]

@@ -16,24 +16,22 @@ WAIT_MS = 20_000  # generous: a loaded CI machine; the work itself takes well un
 
 
 def _wait_for(qtbot, widget, start):
-    """Run `start` (which starts a worker), then wait until that worker has finished."""
+    """Run `start` (which starts the widget's background job), then wait until it is done."""
     worker = start()
     assert worker is not None, getattr(widget, "_message", widget).value
-    with qtbot.waitSignal(worker.finished, timeout=WAIT_MS):
-        pass
-    qtbot.waitUntil(lambda: not worker.is_running, timeout=WAIT_MS)
+    _wait_idle(qtbot, widget)
     return worker
 
 
-def _wait_worker(qtbot, worker):
-    qtbot.waitUntil(lambda: worker is not None and not worker.is_running, timeout=WAIT_MS)
+def _wait_idle(qtbot, widget):
+    """Wait until the widget's background job (queued or running) has finished."""
+    qtbot.waitUntil(lambda: not widget.job.busy, timeout=WAIT_MS)
 
 
 def _stop(qtbot, monitor):
     """Stop a monitor's timer and let its last read finish (no thread outlives the test)."""
     monitor.close_timer()
-    if monitor.worker is not None:
-        _wait_worker(qtbot, monitor.worker)
+    _wait_idle(qtbot, monitor)
 
 
 def test_view_opens_a_store_with_time_slider_and_renders_it(make_napari_viewer, qtbot,
@@ -143,7 +141,7 @@ def test_monitor_reads_a_half_finished_store(make_napari_viewer, volrecon_plugin
     _, widget = viewer.window.add_plugin_dock_widget("volrecon", MONITOR_WIDGET)
     # The store opened in the viewer is chosen and read at once, then on a timer.
     assert str(widget._store.value) == str(output_store.path.resolve())
-    _wait_worker(qtbot, widget.worker)
+    _wait_idle(qtbot, widget)
     qtbot.waitUntil(lambda: widget.snapshot is not None, timeout=WAIT_MS)
     assert widget._timer.isActive() and widget._timer.interval() == 2000
     assert widget._summary.value.startswith(f"{FINISHED} of {N_FRAMES} frames finished, 1 "
@@ -175,7 +173,7 @@ def test_monitor_shows_new_frames_in_the_viewer(make_napari_viewer, volrecon_plu
     assert np.isnan(layer.get_value(where))
     _, widget = viewer.window.add_plugin_dock_widget("volrecon", MONITOR_WIDGET)
     widget._follow.value = False
-    _wait_worker(qtbot, widget.worker)
+    _wait_idle(qtbot, widget)
     qtbot.waitUntil(lambda: widget.snapshot is not None, timeout=WAIT_MS)
     # The job goes on: frames 6..8 are written and recorded.
     store = JobStore.open(output_store.path)
@@ -186,7 +184,8 @@ def test_monitor_shows_new_frames_in_the_viewer(make_napari_viewer, volrecon_plu
                               objective=np.ones(3), residual=np.full(3, 0.01),
                               converged=np.ones(3, bool), seconds=np.ones(3, np.float32),
                               status=np.ones(3, np.uint8)))
-    _wait_worker(qtbot, widget.refresh())
+    assert widget.refresh() is not None
+    _wait_idle(qtbot, widget)
     qtbot.waitUntil(lambda: widget.snapshot.status.done == FINISHED + 3, timeout=WAIT_MS)
     # The layer was given fresh data, so the frame on screen is read again, not from cache.
     assert layer.get_value(where) == 7.25
@@ -268,5 +267,21 @@ def test_manifest_contributions(volrecon_plugin):
     manifest = volrecon_plugin.get_manifest("volrecon")
     assert {w.display_name for w in manifest.contributions.widgets} == {
         "Preview", MONITOR_WIDGET, "Time traces"}
-    assert [s.key for s in manifest.contributions.sample_data] == ["hydrogel"]
+    assert [s.key for s in manifest.contributions.sample_data] == ["hydrogel", "demo"]
     assert all(c.id.startswith("volrecon.") for c in manifest.contributions.commands)
+
+
+def test_monitor_closed_during_a_read_drops_the_result(make_napari_viewer, volrecon_plugin,
+                                                        qtbot, output_store):
+    viewer = make_napari_viewer(show=False)
+    dock, widget = viewer.window.add_plugin_dock_widget("volrecon", MONITOR_WIDGET)
+    widget._follow.value = False
+    widget._store.value = output_store.path  # starts a read
+    assert widget.job.busy
+    from PyQt6 import sip  # the binding of this test run (pyproject: qt_api = "pyqt6")
+
+    viewer.window.remove_dock_widget(dock)
+    sip.delete(widget.native)  # the widget is gone (as when its viewer closes) mid-read
+    qtbot.waitUntil(lambda: not widget.job.busy, timeout=WAIT_MS)
+    qtbot.wait(50)  # let the queued result arrive: it must not touch the deleted labels
+    assert widget.snapshot is None

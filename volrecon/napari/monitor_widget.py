@@ -12,8 +12,8 @@ from magicgui.widgets import CheckBox, Container, FileEdit, FloatSpinBox, Label,
 from magicgui.widgets.bases import Widget
 
 from volrecon.errors import VolreconError
-from volrecon.napari._inputs import chosen_path
 from volrecon.napari._plot import PlotCanvas
+from volrecon.napari._widget_tools import BackgroundJob, chosen_path
 from volrecon.napari.monitoring import JobSnapshot, plot_series, read_job_snapshot
 
 if TYPE_CHECKING:
@@ -65,7 +65,7 @@ class JobMonitorWidget(Container[Widget]):
         self._follow.changed.connect(self._restart_timer)
         self._refresh_button.changed.connect(self.refresh)
         self._viewer.layers.events.inserted.connect(self._offer_layer_store)
-        self.worker: Any = None
+        self.job = BackgroundJob(self.native)
         self.snapshot: JobSnapshot | None = None
         self._done_shown = -1
         self._offer_layer_store()
@@ -95,17 +95,11 @@ class JobMonitorWidget(Container[Widget]):
 
     # ------------------------------------------------------------------------------ work
     def refresh(self, _value: Any = None) -> Any:
-        """Read the store now in a worker thread (skipped while a read is running)."""
-        from napari.qt.threading import thread_worker
-
+        """Read the store now in a worker thread; returns it (None while a read is running)."""
         path = self._store_path()
-        if path is None or (self.worker is not None and self.worker.is_running):
+        if path is None or self.job.busy:
             return None
-        worker = thread_worker(_read, start_thread=False)(path)
-        worker.returned.connect(self._show)
-        self.worker = worker
-        worker.start()
-        return worker
+        return self.job.start(_read, path, on_result=self._show)
 
     def _show(self, outcome: JobSnapshot | str) -> None:
         if isinstance(outcome, str):

@@ -22,7 +22,7 @@ from magicgui.widgets import (
 from magicgui.widgets.bases import Widget
 
 from volrecon.errors import ConfigError, ShapeError, VolreconError
-from volrecon.napari._inputs import chosen_path
+from volrecon.napari._widget_tools import BackgroundJob, chosen_path
 from volrecon.napari.preview import PreviewResult, PreviewSettings, preview_frame, read_frame
 from volrecon.napari.stores import VOLUME_COLORMAP
 from volrecon.solvers.reconstruct import METHODS
@@ -121,7 +121,7 @@ class PreviewWidget(Container[Widget]):
         self._models: dict[tuple[str, float], PSFModel] = {}
         self._count = 0
         self._own: list[Any] = []
-        self.worker: Any = None
+        self.job = BackgroundJob(self.native)
         self._update_enabled()
 
     # ------------------------------------------------------------------------------ inputs
@@ -204,8 +204,6 @@ class PreviewWidget(Container[Widget]):
 
     def start(self, _value: Any = None) -> Any:
         """Start a preview with the current settings; returns the worker (None on bad input)."""
-        from napari.qt.threading import thread_worker
-
         try:
             request = self._request()
         except VolreconError as exc:
@@ -213,12 +211,8 @@ class PreviewWidget(Container[Widget]):
             return None
         self._run.enabled = False
         self._message.value = f"reconstructing ({request.settings.label()}) …"
-        worker = thread_worker(self._compute, start_thread=False)(request)
-        worker.returned.connect(self._show)
-        worker.finished.connect(self._done)
-        self.worker = worker
-        worker.start()
-        return worker
+        return self.job.start(self._compute, request, on_result=self._show,
+                              on_finished=self._done)
 
     def _done(self) -> None:
         self._run.enabled = True

@@ -21,8 +21,8 @@ from magicgui.widgets import (
 from magicgui.widgets.bases import Widget
 
 from volrecon.errors import ConfigError, VolreconError
-from volrecon.napari._inputs import chosen_path
 from volrecon.napari._plot import PlotCanvas
+from volrecon.napari._widget_tools import BackgroundJob, chosen_path
 from volrecon.napari.regions import frame_times_s, layer_regions
 from volrecon.napari.traces import delta_f_over_f, region_means, write_traces_csv
 
@@ -102,7 +102,7 @@ class TimeTracesWidget(Container[Widget]):
         self._percentile.changed.connect(self._redraw)
         for event in (self._viewer.layers.events.inserted, self._viewer.layers.events.removed):
             event.connect(self._refresh_choices)
-        self.worker: Any = None
+        self.job = BackgroundJob(self.native)
         self.traces: Traces | None = None
 
     # ----------------------------------------------------------------------------- inputs
@@ -125,8 +125,6 @@ class TimeTracesWidget(Container[Widget]):
     # ------------------------------------------------------------------------------- work
     def start(self, _value: Any = None) -> Any:
         """Compute the traces in a worker thread; returns the worker (None on bad input)."""
-        from napari.qt.threading import thread_worker
-
         try:
             if self._image.value is None or self._regions.value is None:
                 raise ConfigError("choose an image layer and a Points or Shapes layer first")
@@ -140,14 +138,9 @@ class TimeTracesWidget(Container[Widget]):
         data = image.data[0] if image.multiscale else image.data
         self._message.value = f"reading {len(regions)} regions …"
         self._plot_button.enabled = False
-        worker = thread_worker(_compute, start_thread=False)(
-            data, regions, [r.name for r in regions], frame_times_s(image), image.name,
-            regions_layer.name)
-        worker.returned.connect(self._show)
-        worker.finished.connect(self._done)
-        self.worker = worker
-        worker.start()
-        return worker
+        return self.job.start(_compute, data, regions, [r.name for r in regions],
+                              frame_times_s(image), image.name, regions_layer.name,
+                              on_result=self._show, on_finished=self._done)
 
     def _done(self) -> None:
         self._plot_button.enabled = True

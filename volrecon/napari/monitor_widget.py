@@ -131,7 +131,9 @@ class JobMonitorWidget(Container[Widget]):
                 ax.legend(fontsize=7, loc="upper right")
             ax.set_ylabel(label, fontsize=8)
             ax.set_xlim(-0.5, snapshot.status.total - 0.5)
-        if np.any(snapshot.diagnostics["residual"] > 0):
+        residual = snapshot.diagnostics["residual"]
+        positive = residual[np.isfinite(residual) & (residual > 0)]
+        if positive.size and positive.max() > 10 * positive.min():  # spans a decade or more
             plot.axes[1].set_yscale("log")
         plot.axes[-1].set_xlabel("frame", fontsize=8)
         plot.draw()

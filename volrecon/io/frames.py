@@ -160,17 +160,24 @@ class TiffFrames(FrameSource):
         return self.path
 
     @classmethod
-    def open(cls, path: str | os.PathLike[str]) -> TiffFrames:
+    def open(cls, path: str | os.PathLike[str], *, key: str = "[video] path") -> TiffFrames:
         """Check a TIFF file of 2-D frames and return its reader.
+
+        Parameters
+        ----------
+        path : str or path
+            The TIFF file.
+        key : str
+            Where the path came from (a job-file key), named in error messages.
 
         Raises
         ------
         InputFileError
             If the file is missing, not a TIFF, truncated, or its pages are not 2-D grayscale
-            frames of one size and dtype.
+            frames of one size and a real (integer or floating-point) dtype.
         """
         path = os.fspath(path)
-        shape, dtype, offset, byte_order = _inspect_tiff(path)
+        shape, dtype, offset, byte_order = _inspect_tiff(path, key=key)
         return cls(shape=shape, dtype=dtype, path=path, data_offset=offset,
                    byte_order=byte_order)
 
@@ -192,15 +199,22 @@ class TiffFrames(FrameSource):
                 self.dtype, copy=False)
 
 
-def _inspect_tiff(path: str) -> tuple[tuple[int, int, int], np.dtype[Any], int | None, str]:
+def _inspect_tiff(path: str, *, key: str = "[video] path"
+                  ) -> tuple[tuple[int, int, int], np.dtype[Any], int | None, str]:
     import tifffile
 
     if not os.path.isfile(path):
-        raise InputFileError(f"{path}: no such file; check [video] path in the job file")
+        what = "is a folder, not a TIFF file" if os.path.isdir(path) else "no such file"
+        raise InputFileError(f"{path}: {what}; check {key} in the job file")
     size = os.path.getsize(path)
     messages: list[str] = []
     handler = _ListHandler(messages)
     logger = logging.getLogger("tifffile")
+    # While the file is checked, tifffile's error log lines come here only: whatever level a
+    # caller set (the CLI silences tifffile) must not hide a broken page chain.
+    level, propagate = logger.level, logger.propagate
+    logger.setLevel(logging.ERROR)
+    logger.propagate = False
     logger.addHandler(handler)
     try:
         with tifffile.TiffFile(path) as tf:
@@ -208,6 +222,12 @@ def _inspect_tiff(path: str) -> tuple[tuple[int, int, int], np.dtype[Any], int |
             series = tf.series
             first = tf.pages.first
             frame_shape = tuple(int(n) for n in first.shape)
+            if first.dtype is None or np.dtype(first.dtype).kind not in "uif":
+                raise InputFileError(
+                    f"{path}: pixels are of type {first.dtype}; expected integer or "
+                    "floating-point grayscale frames (save the video as uint8, uint16 or "
+                    "float32)"
+                )
             if len(frame_shape) != 2 or first.samplesperpixel != 1:
                 raise InputFileError(
                     f"{path}: pages have shape {frame_shape}; expected 2-D grayscale frames "
@@ -252,10 +272,12 @@ def _inspect_tiff(path: str) -> tuple[tuple[int, int, int], np.dtype[Any], int |
         raise
     except _TIFF_ERRORS as exc:
         raise InputFileError(
-            f"{path}: not a readable TIFF file ({exc}); check [video] path"
+            f"{path}: not a readable TIFF file ({exc}); check {key}"
         ) from exc
     finally:
         logger.removeHandler(handler)
+        logger.setLevel(level)
+        logger.propagate = propagate
     if messages:
         raise InputFileError(f"{path}: damaged TIFF ({messages[0]}); copy it again")
     shape = (n_pages, frame_shape[0], frame_shape[1])
@@ -389,6 +411,12 @@ def _open_zarr_array(path: str, component: str) -> Any:
 
     if not os.path.isdir(path):
         raise InputFileError(f"{path}: no such zarr store; check [video] path")
+    if not any(os.path.isfile(os.path.join(path, name))
+               for name in ("zarr.json", ".zarray", ".zgroup")):
+        raise InputFileError(
+            f"{path}: a folder but not a zarr store (no zarr.json); set [video] path to a TIFF "
+            "file, a glob pattern of TIFFs or a zarr store"
+        )
     try:
         node = zarr.open(path, mode="r", path=component or None)
     except (FileNotFoundError, KeyError, ValueError, zarr.errors.NodeNotFoundError) as exc:
@@ -437,17 +465,25 @@ def open_frames(path: str | os.PathLike[str], *, component: str = "") -> FrameSo
     return TiffFrames.open(text)
 
 
-def read_image(path: str | os.PathLike[str]) -> np.ndarray:
+def read_image(path: str | os.PathLike[str], *, key: str = "the calibration image path"
+               ) -> np.ndarray:
     """Read a calibration image (dark or flat frame) as float32 ``(Y, X)``.
 
     A multi-page TIFF is averaged over its pages (a stack of dark frames becomes their mean).
+
+    Parameters
+    ----------
+    path : str or path
+        The TIFF file.
+    key : str
+        Where the path came from (e.g. ``"[video] dark"``), named in error messages.
 
     Raises
     ------
     InputFileError
         If the file is missing or not a TIFF of 2-D frames.
     """
-    source = TiffFrames.open(path)
+    source = TiffFrames.open(path, key=key)
     total = np.zeros(source.shape[1:], dtype=np.float64)
     step = 64
     for start in range(0, source.n_frames, step):

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import copy
 import json
+import math
 import os
 import tomllib
 from dataclasses import dataclass, field
@@ -174,7 +175,11 @@ def load_job(path: str | os.PathLike[str]) -> JobConfig:
     try:
         text = job_path.read_text(encoding="utf-8")
     except OSError as exc:
-        raise ConfigError(f"{job_path}: cannot read the job file ({exc.strerror})") from exc
+        raise ConfigError(f"{job_path}: cannot read the job file ({exc.strerror}); check the "
+                          "path of the job file") from exc
+    except UnicodeDecodeError as exc:
+        raise ConfigError(f"{job_path}: not a text file (byte {exc.start} is not UTF-8); give "
+                          "a TOML job file (see workflows/workstation.toml)") from exc
     try:
         document = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
@@ -201,6 +206,7 @@ def job_from_dict(document: dict[str, Any], *, base_dir: str | os.PathLike[str] 
         If the document breaks the schema or its frame range is empty.
     """
     _validate(document, source)
+    _refuse_non_finite(document, source)
     document = _with_defaults(copy.deepcopy(document), job_schema())
     base = Path(base_dir) if base_dir is not None else Path.cwd()
     video, output = document["video"], document["output"]
@@ -250,6 +256,18 @@ def _with_defaults(document: dict[str, Any], schema: dict[str, Any]) -> dict[str
         elif key not in document and "default" in sub:
             document[key] = copy.deepcopy(sub["default"])
     return document
+
+
+def _refuse_non_finite(value: Any, source: str, where: str = "") -> None:
+    """TOML allows ``nan`` and ``inf``, which pass every numeric bound of the schema."""
+    if isinstance(value, dict):
+        for key, item in value.items():
+            _refuse_non_finite(item, source, f"{where}.{key}" if where else str(key))
+    elif isinstance(value, list):
+        for item in value:
+            _refuse_non_finite(item, source, where)
+    elif isinstance(value, float) and not math.isfinite(value):
+        raise ConfigError(f"{source}: key '{where}' is {value}; use a finite number")
 
 
 def _validate(document: Any, source: str) -> None:

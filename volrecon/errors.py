@@ -13,6 +13,7 @@ __all__ = [
     "DataError",
     "InputFileError",
     "ModelStoreError",
+    "OutputWriteError",
     "ShapeError",
     "StoreLockedError",
     "StoreMismatchError",
@@ -43,6 +44,10 @@ class InputFileError(VolreconError, OSError):
 
 class ModelStoreError(VolreconError, ValueError):
     """A path is not a volrecon PSF model store, or one from an unsupported format version."""
+
+
+class OutputWriteError(VolreconError, OSError):
+    """An output (store, lock, exported TIFF) cannot be written: disk full, read-only, bad path."""
 
 
 class StoreMismatchError(VolreconError, ValueError):

@@ -138,11 +138,14 @@ def create_ome_image(path: str | os.PathLike[str], *, shape_tzyx: tuple[int, int
         raise ConfigError(f"compression_level must be 1 to 22; got {compression_level}")
     shape = tuple(int(n) for n in shape_tzyx)
     chunks = chunks_tzyx or volume_chunks(shape[1:])  # type: ignore[arg-type]
-    group = zarr.open_group(zarr.storage.LocalStore(os.fspath(path)), mode="w-", zarr_format=3)
+    ome = ome_image_attributes(scale_tzyx=scale_tzyx, name=name,
+                               translation_tzyx=translation_tzyx)  # checked before any write
+    # The caller's attributes go into the group's first write, so a store interrupted at any
+    # later moment is recognisable by them; "ome" follows once the image array exists.
+    group = zarr.open_group(zarr.storage.LocalStore(os.fspath(path)), mode="w-", zarr_format=3,
+                            attributes=dict(attributes or {}))
     group.create_array(IMAGE_PATH, shape=shape, chunks=chunks, dtype="float32",
                        compressors=ZstdCodec(level=compression_level), fill_value=np.nan,
                        dimension_names=list(AXES_TZYX))
-    group.attrs.update({**(attributes or {}),
-                        "ome": ome_image_attributes(scale_tzyx=scale_tzyx, name=name,
-                                                    translation_tzyx=translation_tzyx)})
+    group.attrs.update({**(attributes or {}), "ome": ome})
     return group

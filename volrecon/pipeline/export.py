@@ -2,14 +2,17 @@
 
 from __future__ import annotations
 
+import contextlib
 import os
+import uuid
 from collections.abc import Iterator
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
-from volrecon.errors import ConfigError
-from volrecon.pipeline.store import JobStore
+from volrecon.errors import ConfigError, InputFileError, OutputWriteError, VolreconError
+from volrecon.pipeline.store import DAMAGE_ERRORS, JobStore
 
 __all__ = ["export_tiff", "parse_frame_range"]
 
@@ -74,7 +77,10 @@ def export_tiff(store_path: str | os.PathLike[str], tiff_path: str | os.PathLike
     Raises
     ------
     InputFileError
-        If `store_path` is not a volrecon output store.
+        If `store_path` is not a volrecon output store, or a selected frame's chunk is damaged.
+    OutputWriteError
+        If `tiff_path` cannot be written (a folder, below a file, disk full); an existing file
+        there is left unchanged.
     ConfigError
         For a bad frame range or projection, or a result over ImageJ's 4 GB limit.
     """
@@ -102,21 +108,46 @@ def export_tiff(store_path: str | os.PathLike[str], tiff_path: str | os.PathLike
     if projected and "projections" in store.group:
         source = store.group["projections/max_z"]
 
+    def read(array: Any, t: int) -> np.ndarray:
+        try:
+            return np.asarray(array[t], dtype=np.float32)
+        except DAMAGE_ERRORS as exc:
+            raise InputFileError(
+                f"{store.path}: frame {t} of '{array.path}' cannot be read (chunk files "
+                f"{array.path}/c/{t}/…: {exc}); the store is damaged there: export other "
+                "frames with --frames, or recompute the job with --restart"
+            ) from exc
+
     def planes() -> Iterator[np.ndarray]:
         for t in range(selected.start, selected.stop):
             if projected:
-                plane = (np.asarray(source[t]) if source is not None
-                         else np.max(np.asarray(image[t]), axis=0))
-                yield plane.astype(np.float32, copy=False)
+                plane = read(source, t) if source is not None else np.max(read(image, t), axis=0)
+                yield plane
             else:
-                volume = np.asarray(image[t], dtype=np.float32)
-                yield from volume
+                yield from read(image, t)
 
     out = Path(tiff_path)
+    if out.is_dir():
+        raise OutputWriteError(f"--tiff {out}: is a folder; give the name of a TIFF file")
     metadata = {"axes": "TYX" if projected else "TZYX", "unit": "um", "finterval": finterval}
     if not projected:
         metadata["spacing"] = spacing
-    with tifffile.TiffWriter(out, imagej=True) as writer:
-        writer.write(planes(), shape=shape, dtype=np.float32,
-                     resolution=(1.0 / pixel_x, 1.0 / pixel_y), metadata=metadata)
+    # Written beside the target and renamed at the end: an export that fails half-way leaves
+    # an existing file of that name as it was.
+    partial = out.with_name(f".{out.name}.{uuid.uuid4().hex}.partial")
+    try:
+        with tifffile.TiffWriter(partial, imagej=True) as writer:
+            writer.write(planes(), shape=shape, dtype=np.float32,
+                         resolution=(1.0 / pixel_x, 1.0 / pixel_y), metadata=metadata)
+        os.replace(partial, out)
+    except OSError as exc:
+        if isinstance(exc, VolreconError):
+            raise
+        raise OutputWriteError(
+            f"--tiff {out}: cannot write the file ({exc.strerror or exc}); choose a path in a "
+            "writable folder with enough free space"
+        ) from exc
+    finally:
+        with contextlib.suppress(OSError):
+            partial.unlink()
     return out

@@ -15,6 +15,7 @@ Order of work, so that a bad job never touches an existing store:
 
 from __future__ import annotations
 
+import errno
 import logging
 import os
 import platform
@@ -27,7 +28,14 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from volrecon.errors import ConfigError, InputFileError, ShapeError, StoreMismatchError
+from volrecon.errors import (
+    ConfigError,
+    InputFileError,
+    OutputWriteError,
+    ShapeError,
+    StoreMismatchError,
+    VolreconError,
+)
 from volrecon.io.correct import FrameCorrection
 from volrecon.io.fingerprint import fingerprint_file, fingerprint_frames, fingerprint_tree
 from volrecon.io.frames import FrameSource, open_frames, read_image
@@ -40,7 +48,9 @@ from volrecon.pipeline.store import (
     STATUS_PENDING,
     FrameRecords,
     JobStore,
+    creation_interrupted,
     is_job_store,
+    is_vacant,
 )
 from volrecon.pipeline.task import TaskContext
 
@@ -156,14 +166,16 @@ def prepare_job(job: JobConfig) -> PreparedJob:
         If the frame range is outside the video.
     BackendError
         If ``device = "gpu"`` and no GPU can be used.
+    OutputWriteError
+        If the output path lies below a regular file.
     """
     from volrecon.backend import get_backend
     from volrecon.models.base import PSFModel
 
     model = PSFModel.load(job.model_path)
     source = open_frames(job.video_path, component=job.video_component)
-    dark = read_image(job.dark_path) if job.dark_path is not None else None
-    flat = read_image(job.flat_path) if job.flat_path is not None else None
+    dark = read_image(job.dark_path, key="[video] dark") if job.dark_path is not None else None
+    flat = read_image(job.flat_path, key="[video] flat") if job.flat_path is not None else None
     correction = FrameCorrection.build(dark_yx=dark, flat_yx=flat, binning=job.binning,
                                        name_dark=str(job.dark_path),
                                        name_flat=str(job.flat_path))
@@ -189,6 +201,7 @@ def prepare_job(job: JobConfig) -> PreparedJob:
         n_frames = stop - first
     if job.compute.device != "cpu":
         get_backend(job.compute.device)
+    _check_output_location(job)
     fingerprints = {"model.path": fingerprint_tree(job.model_path),
                     "video.path": fingerprint_frames(source)}
     if job.dark_path is not None:
@@ -197,6 +210,39 @@ def prepare_job(job: JobConfig) -> PreparedJob:
         fingerprints["video.flat"] = fingerprint_file(job.flat_path)
     return PreparedJob(job=job, model=model, source=source, correction=correction,
                        first_frame=first, n_frames=n_frames, fingerprints=fingerprints)
+
+
+def _check_output_location(job: JobConfig) -> None:
+    """Refuse an output path below a regular file before anything is written."""
+    ancestor = job.output_path.parent
+    while not ancestor.exists() and ancestor != ancestor.parent:
+        ancestor = ancestor.parent
+    if ancestor.exists() and not ancestor.is_dir():
+        raise OutputWriteError(
+            f"{job.source}: key 'output.path' is {job.output_path}, but {ancestor} is a file, "
+            "not a folder; choose another [output] path"
+        )
+
+
+#: errno values of a failed write to the output store, and what to do about each.
+_WRITE_FIXES = {
+    errno.ENOSPC: "free disk space, then run the same command again to continue",
+    errno.EDQUOT: "free space within your quota, then run the same command again to continue",
+    errno.EFBIG: "choose an [output] path on a file system that allows larger files",
+    errno.EROFS: "the file system is read-only; choose another [output] path",
+    errno.EACCES: "the folder is not writable for you; choose another [output] path",
+    errno.EPERM: "the folder is not writable for you; choose another [output] path",
+    errno.ENOTDIR: "part of the path is a file, not a folder; choose another [output] path",
+    errno.EEXIST: "part of the path is a file, not a folder; choose another [output] path",
+    errno.EIO: "the disk reported an I/O error; check it, then run the same command again",
+}
+
+
+def _write_error(job: JobConfig, exc: OSError) -> OutputWriteError:
+    reason = exc.strerror or str(exc)
+    fix = _WRITE_FIXES.get(exc.errno or 0, "check the disk, then run the same command again")
+    return OutputWriteError(f"{job.output_path}: cannot write the output store ({reason}); "
+                            f"{fix}")
 
 
 def _binning_hint(raw: tuple[int, ...], model: tuple[int, ...], binning: int) -> str:
@@ -238,6 +284,12 @@ def run_job(job: JobConfig | str | os.PathLike[str], *, restart: bool = False,
         If another live process is writing the store.
     StoreMismatchError
         If the store was written with other settings and `restart` is false.
+    InputFileError
+        Also if the existing store is damaged (missing or unreadable metadata or status) or
+        of another format version; it is left as it is.
+    OutputWriteError
+        If the store cannot be written (disk full, read-only); frames already marked done
+        stay valid and the next run continues.
     KeyboardInterrupt
         On Ctrl-C; the store stays consistent and the next run continues it.
 
@@ -249,12 +301,19 @@ def run_job(job: JobConfig | str | os.PathLike[str], *, restart: bool = False,
     if not isinstance(job, JobConfig):
         job = load_job(job)
     prepared = prepare_job(job)
-    lock = StoreLock(job.output_path).acquire()
     try:
-        store = _open_store(prepared, restart=restart)
-        return _run(prepared, store, progress=progress, client=client)
-    finally:
-        lock.release()
+        lock = StoreLock(job.output_path).acquire()
+        try:
+            store = _open_store(prepared, restart=restart)
+            return _run(prepared, store, progress=progress, client=client)
+        finally:
+            lock.release()
+    except OSError as exc:
+        # Store writes that fail (disk full, read-only) become one clear line; errors volrecon
+        # raised itself and other OS errors (a bug, a lost cluster connection) pass unchanged.
+        if isinstance(exc, VolreconError) or exc.errno not in _WRITE_FIXES:
+            raise
+        raise _write_error(job, exc) from exc
 
 
 def _open_store(prepared: PreparedJob, *, restart: bool) -> JobStore:
@@ -270,6 +329,8 @@ def _open_store(prepared: PreparedJob, *, restart: bool) -> JobStore:
         try:
             store = JobStore.open(path)
         except InputFileError:
+            if not creation_interrupted(path):
+                raise  # damaged, or another format: never deleted without --restart
             logger.warning("%s: its creation was interrupted; creating it again", path)
             JobStore.wipe(path)
         else:
@@ -282,7 +343,7 @@ def _open_store(prepared: PreparedJob, *, restart: bool) -> JobStore:
                     f"{expected}; re-run with --restart to start over"
                 )
             return store
-    elif path.exists() and not (path.is_dir() and not any(path.iterdir())):
+    elif path.exists() and not (path.is_dir() and is_vacant(path)):
         raise ConfigError(
             f"{path}: exists and is not a volrecon output store; choose another [output] path"
         )
@@ -385,17 +446,27 @@ def _run(prepared: PreparedJob, store: JobStore, *,
                                  frames_per_second=rate, eta_s=eta))
 
     outcome = "error"
+    failure: BaseException | None = None
     try:
         execute_tasks(tasks, context, job.compute, on_result, client=client)
         outcome = "complete" if counts["done"] == total else "stopped"
-    except KeyboardInterrupt:
-        outcome = "interrupted"
+    except BaseException as exc:
+        failure = exc
+        if isinstance(exc, KeyboardInterrupt):
+            outcome = "interrupted"
         raise
     finally:
         ended = time.time()
         run_record.update(ended=_now(), ended_epoch_s=ended, outcome=outcome,
                           frames_done_after=counts["done"], frames_computed=counts["computed"])
-        store.update_attributes(runs=[*runs, run_record])
+        try:
+            store.update_attributes(runs=[*runs, run_record])
+        except OSError as exc:
+            if failure is None:
+                raise
+            # The disk that made the run fail often refuses this record too: the first error
+            # is the one to report, and the store stays consistent without the record.
+            logger.warning("%s: could not record the end of the run (%s)", store.path, exc)
     return JobResult(store_path=store.path, total=total, done=counts["done"],
                      failed=counts["failed"], computed=counts["computed"],
                      seconds=time.time() - started)

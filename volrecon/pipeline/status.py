@@ -18,6 +18,7 @@ from volrecon.pipeline.store import (
     STATUS_PENDING,
     STORE_ATTRIBUTE,
     JobStore,
+    creation_interrupted,
     is_job_store,
 )
 
@@ -90,6 +91,8 @@ def store_status(path: str | os.PathLike[str]) -> StoreStatus:
     try:
         store = JobStore.open(path, mode="r")
     except InputFileError:
+        if not creation_interrupted(path):
+            raise
         # Killed while creating the store: nothing is done yet.
         attributes = json.loads((path / "zarr.json").read_text())["attributes"][STORE_ATTRIBUTE]
         total = int(attributes.get("video", {}).get("n_frames", 0))

@@ -26,6 +26,7 @@ from __future__ import annotations
 import json
 import math
 import os
+import re
 import shutil
 import time
 from collections.abc import Mapping
@@ -48,7 +49,9 @@ __all__ = [
     "STORE_ATTRIBUTE",
     "FrameRecords",
     "JobStore",
+    "creation_interrupted",
     "is_job_store",
+    "is_vacant",
     "max_projections",
 ]
 
@@ -73,6 +76,11 @@ PROJECTIONS: dict[str, tuple[int, tuple[str, ...]]] = {
 }
 #: Frames per chunk of the diagnostics arrays (written by one process only).
 DIAGNOSTICS_CHUNK = 4096
+#: What zarr raises on damaged metadata or chunks (a codec error is a RuntimeError).
+DAMAGE_ERRORS: tuple[type[Exception], ...] = (KeyError, ValueError, TypeError, RuntimeError,
+                                              IndexError, AttributeError)
+_PARTIAL = re.compile(r"^.+\.[0-9a-f]{32}\.partial$")
+_DAMAGED_FIX = "restore the store from a copy, or re-run the job with --restart to start over"
 
 
 def max_projections(volume_zyx: np.ndarray) -> dict[str, np.ndarray]:
@@ -115,6 +123,28 @@ def is_job_store(path: str | os.PathLike[str]) -> bool:
     return STORE_ATTRIBUTE in document.get("attributes", {})
 
 
+def creation_interrupted(path: str | os.PathLike[str]) -> bool:
+    """True when `path` is a volrecon output store whose creation never finished."""
+    try:
+        document = json.loads((Path(path) / "zarr.json").read_text(encoding="utf-8"))
+        attributes = document["attributes"][STORE_ATTRIBUTE]
+        return bool(attributes["state"] != "ready")
+    except (OSError, ValueError, KeyError, TypeError):
+        return False
+
+
+def is_vacant(path: str | os.PathLike[str]) -> bool:
+    """True when `path` is an empty folder, or holds only temporary files of zarr writes.
+
+    A run killed while writing a new store's first file leaves just that temporary file.
+    """
+    try:
+        entries = list(Path(path).iterdir())
+    except OSError:
+        return False
+    return all(entry.is_file() and _PARTIAL.match(entry.name) for entry in entries)
+
+
 def _now() -> str:
     return time.strftime("%Y-%m-%dT%H:%M:%S%z")
 
@@ -134,10 +164,22 @@ class JobStore:
     """
 
     def __init__(self, path: Path, group: Any) -> None:
+        import zarr
+
         self.path = path
         self.group: Any = group
-        diagnostics = group["diagnostics"]
-        self._diagnostics = {name: diagnostics[name] for name in DIAGNOSTICS}
+        arrays = {}
+        for key in (IMAGE_PATH, *(f"diagnostics/{name}" for name in DIAGNOSTICS)):
+            try:
+                arrays[key] = group[key]
+            except DAMAGE_ERRORS as exc:
+                raise InputFileError(
+                    f"{path}: array '{key}' is missing or its metadata is damaged "
+                    f"({type(exc).__name__}); {_DAMAGED_FIX}"
+                ) from exc
+            if not isinstance(arrays[key], zarr.Array):
+                raise InputFileError(f"{path}: '{key}' is not an array; {_DAMAGED_FIX}")
+        self._diagnostics = {name: arrays[f"diagnostics/{name}"] for name in DIAGNOSTICS}
 
     # ------------------------------------------------------------------------- lifecycle
     @classmethod
@@ -163,8 +205,8 @@ class JobStore:
         from zarr.codecs import ZstdCodec
 
         path = Path(path)
-        if path.is_dir() and not any(path.iterdir()):
-            path.rmdir()
+        if path.is_dir() and is_vacant(path):
+            shutil.rmtree(path)
         attributes = {"format_version": FORMAT_VERSION, "state": "creating", **metadata}
         group: Any = create_ome_image(path, shape_tzyx=(n_frames, *shape_zyx),
                                  scale_tzyx=scale_tzyx, name="volumes",
@@ -209,9 +251,18 @@ class JobStore:
                 f"{path}: not a volrecon output store (no '{STORE_ATTRIBUTE}' attribute); give "
                 "the [output] path of a job"
             )
-        group: Any = zarr.open_group(zarr.storage.LocalStore(path, read_only=mode == "r"),
-                                     mode=mode)
-        attributes = group.attrs[STORE_ATTRIBUTE]
+        try:
+            group: Any = zarr.open_group(zarr.storage.LocalStore(path, read_only=mode == "r"),
+                                         mode=mode)
+            attributes = group.attrs[STORE_ATTRIBUTE]
+        except DAMAGE_ERRORS as exc:
+            raise InputFileError(
+                f"{path}: the store's metadata (zarr.json) is damaged ({type(exc).__name__}); "
+                f"{_DAMAGED_FIX}"
+            ) from exc
+        if not isinstance(attributes, dict):
+            raise InputFileError(
+                f"{path}: attribute '{STORE_ATTRIBUTE}' is not a table; {_DAMAGED_FIX}")
         if attributes.get("format_version") != FORMAT_VERSION:
             raise InputFileError(
                 f"{path}: output store format {attributes.get('format_version')} is not "
@@ -235,7 +286,7 @@ class JobStore:
         path = Path(path)
         if not path.exists():
             return
-        if path.is_dir() and not any(path.iterdir()):
+        if path.is_dir() and is_vacant(path):
             return
         if not is_job_store(path):
             raise ConfigError(
@@ -279,7 +330,11 @@ class JobStore:
         if difference is None:
             return
         key, old, new = difference
-        if key.endswith(".path") or key in ("video.dark", "video.flat"):
+        if key in ("video.dark", "video.flat") and (old is None or new is None):
+            what = (f"the store was made {'without' if old is None else 'with'} '{key}' but "
+                    f"{job_source} {'sets' if old is None else 'does not set'} it")
+            fix = f"{'remove' if old is None else 'set'} '{key}' to resume"
+        elif key.endswith(".path") or key in ("video.dark", "video.flat"):
             what = (f"the file behind '{key}' is not the one the store was made from "
                     f"(fingerprint {_short(old)} in the store, {_short(new)} now)")
             fix = "point it at the original file to resume"
@@ -293,13 +348,33 @@ class JobStore:
 
     # ------------------------------------------------------------------------ frames
     def status(self) -> np.ndarray:
-        """Per-frame status codes ``(T,)`` (0 pending, 1 done, 2 failed)."""
-        return np.asarray(self._diagnostics["status"][:])
+        """Per-frame status codes ``(T,)`` (0 pending, 1 done, 2 failed).
+
+        Raises
+        ------
+        InputFileError
+            If the status array cannot be read back (a damaged chunk).
+        """
+        try:
+            status = np.asarray(self._diagnostics["status"][:])
+        except DAMAGE_ERRORS as exc:
+            raise InputFileError(
+                f"{self.path}: array 'diagnostics/status' (the record of finished frames) "
+                f"cannot be read ({exc}); {_DAMAGED_FIX}"
+            ) from exc
+        if status.shape != (self.n_frames,) or status.dtype != np.uint8:
+            raise InputFileError(
+                f"{self.path}: array 'diagnostics/status' has shape {status.shape} and dtype "
+                f"{status.dtype}, expected ({self.n_frames},) uint8; {_DAMAGED_FIX}"
+            )
+        return status
 
     def failures(self) -> dict[int, str]:
         """Reason of each failed frame."""
         raw = self.group["diagnostics"].attrs.get("failures", {})
-        return {int(k): str(v) for k, v in raw.items()}
+        if not isinstance(raw, dict):
+            return {}
+        return {int(k): str(v) for k, v in raw.items() if str(k).isdigit()}
 
     def record(self, records: FrameRecords) -> None:
         """Write a finished task's diagnostics; ``status`` last, marking its frames done.

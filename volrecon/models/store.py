@@ -9,6 +9,7 @@ is renamed into place, so a failed save never leaves a partial model behind.
 from __future__ import annotations
 
 import json
+import math
 import os
 import shutil
 import uuid
@@ -116,7 +117,7 @@ def load_model(path: str | os.PathLike[str]) -> PSFModel:
             "'volrecon calibrate' or PSFModel.save"
         ) from exc
     attributes = meta.get("attributes", {}) if isinstance(meta, dict) else {}
-    info = attributes.get(MODEL_ATTRIBUTE)
+    info = attributes.get(MODEL_ATTRIBUTE) if isinstance(attributes, dict) else None
     if not isinstance(info, dict):
         raise ModelStoreError(
             f"{source}: zarr store without the '{MODEL_ATTRIBUTE}' attribute, so not a volrecon "
@@ -135,20 +136,45 @@ def load_model(path: str | os.PathLike[str]) -> PSFModel:
             f"{source}: attribute '{MODEL_ATTRIBUTE}/kind' is {kind!r}; known kinds: "
             f"{', '.join(sorted(kinds))}"
         )
+    norm = info.get("operator_norm_squared")
+    if norm is not None and not (isinstance(norm, int | float) and not isinstance(norm, bool)
+                                 and math.isfinite(norm) and norm > 0):
+        raise ModelStoreError(
+            f"{source}: attribute '{MODEL_ATTRIBUTE}/operator_norm_squared' is {norm!r}, not a "
+            "positive number; re-run calibration"
+        )
+    parameters = info.get("parameters", {})
+    if not isinstance(parameters, dict):
+        raise ModelStoreError(
+            f"{source}: attribute '{MODEL_ATTRIBUTE}/parameters' is not a table; re-run "
+            "calibration"
+        )
     try:
         geometry = Geometry(float(info["depth_step_um"]), float(info["pixel_size_um"]),
                             float(info.get("depth_start_um", 0.0)))
         root = zarr.open_group(zarr.storage.LocalStore(source), mode="r", zarr_format=3)
         arrays = {key: np.asarray(arr[...]) for key, arr in root.arrays()}
-        model = kinds[kind].from_store(arrays, info.get("parameters", {}), geometry,
+        for key, array in arrays.items():
+            if array.size and array.dtype.kind in "uif" and not np.any(array):
+                raise ModelStoreError(
+                    f"{source}: array '{key}' is all zero, so the model would turn every "
+                    "volume into a black frame; re-run calibration with a bead scan that "
+                    "shows the bead"
+                )
+        model = kinds[kind].from_store(arrays, parameters, geometry,
                                        info.get("dtype", "float32"))
+    except ModelStoreError:
+        raise
     except KeyError as exc:
         raise ModelStoreError(
             f"{source}: model store lacks {exc.args[0]!r}; the store is incomplete, "
             "re-run calibration"
         ) from exc
-    except (ValueError, TypeError, OSError) as exc:
+    except (ValueError, TypeError, OSError, RuntimeError, IndexError, AttributeError,
+            ArithmeticError) as exc:
+        # zarr raises ValueError/TypeError on damaged metadata and codec errors
+        # (RuntimeError) on damaged chunks; the model's own checks raise ValueError subclasses.
         raise ModelStoreError(
             f"{source}: cannot read model store ({exc}); re-run calibration") from exc
-    model._seed_norm(info.get("operator_norm_squared"))
+    model._seed_norm(norm)
     return model

@@ -178,10 +178,14 @@ def solve_frame(frame: np.ndarray, model: PSFModel, solver: SolverSettings, stat
     if not np.all(np.isfinite(frame)):
         return None, None, "the corrected frame contains NaN or Inf pixels"
     try:
-        volume, info = reconstruct(
-            frame, model, method=solver.method, iterations=solver.iterations, tv=solver.tv,
-            l1=solver.l1, tol=solver.tol, tv_z_weight=solver.tv_z_weight, init=state,
-            device=model.backend.device, threads=threads, return_info=True)
+        # A diverging frame overflows; the result is checked below and the frame marked
+        # failed, so numpy's floating-point warnings would only repeat that (or, where
+        # warnings are errors, abort the whole job).
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            volume, info = reconstruct(
+                frame, model, method=solver.method, iterations=solver.iterations, tv=solver.tv,
+                l1=solver.l1, tol=solver.tol, tv_z_weight=solver.tv_z_weight, init=state,
+                device=model.backend.device, threads=threads, return_info=True)
     except (VolreconError, ArithmeticError, np.linalg.LinAlgError) as exc:
         return None, None, f"the solver refused the frame: {exc}"
     volume = model.backend.to_numpy(volume)

@@ -133,6 +133,14 @@ def _run_run(args: argparse.Namespace) -> int:
     print(f"{result.store_path}: {result.done}/{result.total} frames done, {result.failed} "
           f"failed; this run computed {result.computed} frames in {result.seconds:.1f} s "
           f"({rate:.3g} frames/s)")
+    if result.failed:
+        # Exit status 1: the job went on past frames that failed (NaN pixels, divergence).
+        failures = store_status(result.store_path).failures
+        first = f" (first: frame {min(failures)}: {failures[min(failures)]})" if failures else ""
+        print(f"volrecon run: {result.failed} of {result.total} frames failed{first}; check "
+              f"those video frames ('volrecon status {result.store_path}' lists them)",
+              file=sys.stderr)
+        return 1
     return 0
 
 
@@ -241,23 +249,28 @@ def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``volrecon`` console script; returns the exit status."""
     parser = build_parser()
     args = parser.parse_args(argv)
-    logging.basicConfig(level=logging.DEBUG if args.debug else logging.WARNING,
+    logging.basicConfig(level=logging.DEBUG if args.debug else logging.ERROR,
                         format="%(levelname)s %(name)s: %(message)s")
     if args.debug:
         return int(args.run(args))
     # Library warnings and log chatter (tifffile logs on truncated files) would bury the one
-    # line that tells the user what to do.
-    logging.getLogger("tifffile").setLevel(logging.CRITICAL)
+    # line that tells the user what to do; --debug shows them.
+    tifffile_logger = logging.getLogger("tifffile")
+    tifffile_level = tifffile_logger.level
+    tifffile_logger.setLevel(logging.CRITICAL)
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             return int(args.run(args))
     except VolreconError as exc:
-        print(f"volrecon {args.command}: error: {exc}", file=sys.stderr)
+        message = " ".join(str(exc).split())  # one line, even if a cause spans several
+        print(f"volrecon {args.command}: error: {message}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print(f"volrecon {args.command}: interrupted", file=sys.stderr)
         return 130
+    finally:
+        tifffile_logger.setLevel(tifffile_level)
 
 
 if __name__ == "__main__":  # pragma: no cover

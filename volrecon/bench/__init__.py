@@ -39,8 +39,9 @@ def main(argv: Sequence[str] | None = None) -> int:
         from volrecon.bench import general
 
         frame, model = iteration.problem(8, 64, 64, "cpu", args.threads)
-        report["general"] = [general.compare(frame, model, tv=0.0, l1=1e-3),
-                             general.compare(frame, model, tv=1e-3, l1=0.0)]
+        level = float(frame.max())
+        report["general"] = [general.compare(frame, model, tv=0.0, l1=1e-3 * level),
+                             general.compare(frame, model, tv=1e-3 * level, l1=0.0)]
     if args.json:
         json.dump(report, sys.stdout, indent=1)
         sys.stdout.write("\n")

@@ -67,12 +67,17 @@ def per_iteration_seconds(frame: Any, model: PSFModel, method: str, *, tv: float
 
 
 def problem(nz: int, ny: int, nx: int, device: str, threads: int | None) -> tuple[Any, PSFModel]:
+    """A simulated diffuser PSF (our optics bench) and a noisy frame of scattered beads."""
+    from volrecon.simulate import MicroscopeDesign
+
     rng = np.random.default_rng(1)
-    psf = rng.random((nz, ny, nx), dtype=np.float32) ** 8
-    psf /= psf.sum(axis=(1, 2), keepdims=True)
+    design = MicroscopeDesign(shape_yx=(ny, nx))
+    psf = design.psf_stack(design.depths_um(nz, 2.0)).psf_zyx
+    psf = psf / psf.sum(axis=(1, 2), keepdims=True)
     model = PSFModel.from_stack(psf, 2.0, 1.0).on_device(device, threads=threads)
-    truth = (rng.random((nz, ny, nx)) > 0.995).astype(np.float32)
+    truth = (rng.random((nz, ny, nx)) > 0.999).astype(np.float32)
     frame = model.backend.to_numpy(model.forward(truth))
+    frame += 0.01 * float(frame.max()) * rng.standard_normal(frame.shape).astype(np.float32)
     model.operator_norm_squared()
     return frame, model
 

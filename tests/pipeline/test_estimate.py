@@ -16,7 +16,7 @@ def test_estimate_writes_nothing_and_predicts_size(job_files, capsys):
     before = sorted(p.name for p in job_files.folder.iterdir())
     assert main(["run", str(job_path), "--estimate"]) == 0
     text = capsys.readouterr().out
-    assert re.search(rf"whole job: {N_FRAMES} frames in about \d+ h \d+ min", text)
+    assert re.search(rf"whole job: {N_FRAMES} frames in about \d+ (s|min)", text)
     assert sorted(p.name for p in job_files.folder.iterdir()) == before  # nothing written
     estimate = estimate_job(load_job(job_path))
     assert estimate.sampled == 3 and estimate.parallel_frames == 2

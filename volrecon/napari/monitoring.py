@@ -13,7 +13,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from volrecon.pipeline.status import StoreStatus, format_status, store_status
+from volrecon.pipeline.status import StoreStatus, format_duration, format_status, store_status
 from volrecon.pipeline.store import STATUS_DONE, STATUS_FAILED, JobStore
 
 if TYPE_CHECKING:
@@ -73,19 +73,6 @@ def read_job_snapshot(path: str | os.PathLike[str]) -> JobSnapshot:
     except OSError:
         diagnostics = {}
     return JobSnapshot(status=status, diagnostics=diagnostics)
-
-
-def format_duration(seconds: float) -> str:
-    """``"2 h 05 min"``, ``"3 min 20 s"``, ``"12 s"``; ``"unknown"`` if not finite."""
-    if not math.isfinite(seconds):
-        return "unknown"
-    hours, rest = divmod(round(seconds), 3600)
-    minutes, secs = divmod(rest, 60)
-    if hours:
-        return f"{hours} h {minutes:02d} min"
-    if minutes:
-        return f"{minutes} min {secs:02d} s"
-    return f"{secs} s"
 
 
 def plot_series(diagnostics: dict[str, np.ndarray], name: str, *, max_points: int = 2000

@@ -17,6 +17,7 @@ import numpy as np
 
 from volrecon.pipeline.execute import fft_threads_per_task
 from volrecon.pipeline.job import prepare_job
+from volrecon.pipeline.status import format_duration
 from volrecon.pipeline.store import PROJECTIONS, max_projections
 from volrecon.pipeline.task import solve_frame
 
@@ -62,11 +63,10 @@ class JobEstimate:
 
     def summary(self) -> str:
         """Lines for the terminal."""
-        hours, rest = divmod(self.seconds, 3600)
         return "\n".join([
             f"estimate from {self.sampled} frames: {self.seconds_per_frame:.3g} s per frame "
             f"({self.mean_iterations:.0f} iterations), {self.parallel_frames} at once",
-            f"whole job: {self.frames} frames in about {int(hours)} h {rest / 60:.0f} min",
+            f"whole job: {self.frames} frames in about {format_duration(self.seconds)}",
             f"store: about {_size(self.store_bytes)} "
             f"(compression {self.compression_ratio:.2g}x of float32)",
         ])

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import math
 import os
 import time
 from dataclasses import dataclass, field
@@ -22,7 +23,7 @@ from volrecon.pipeline.store import (
     is_job_store,
 )
 
-__all__ = ["StoreStatus", "format_status", "store_status"]
+__all__ = ["StoreStatus", "format_duration", "format_status", "store_status"]
 
 
 @dataclass(frozen=True)
@@ -141,11 +142,14 @@ def format_status(status: StoreStatus, *, max_failures: int = 20) -> list[str]:
         which = "current run" if status.running else "last run"
         lines.append(f"throughput: {status.frames_per_second:.3g} frames/s ({which})")
     if status.running and np.isfinite(status.eta_s):
-        lines.append(f"eta: {_duration(status.eta_s)}")
+        lines.append(f"eta: {format_duration(status.eta_s)}")
     return lines
 
 
-def _duration(seconds: float) -> str:
+def format_duration(seconds: float) -> str:
+    """``"2 h 05 min"``, ``"3 min 20 s"``, ``"12 s"``; ``"unknown"`` if not finite."""
+    if not math.isfinite(seconds):
+        return "unknown"
     hours, rest = divmod(round(seconds), 3600)
     minutes, secs = divmod(rest, 60)
     if hours:

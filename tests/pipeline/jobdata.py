@@ -73,6 +73,21 @@ class JobFiles:
         return path
 
 
+def make_job_files(folder: Path, rng: np.random.Generator) -> JobFiles:
+    """Model store, N_FRAMES-frame raw TIFF and dark frame in `folder`."""
+    import tifffile
+
+    model = volrecon.PSFModel.from_stack(gaussian_psf(SHAPE_ZYX), depth_step_um=2.0,
+                                         pixel_size_um=0.65)
+    model.save(folder / "model")
+    raw = bead_video(model, N_FRAMES, rng)
+    tifffile.imwrite(folder / "raw.tif", raw, photometric="minisblack")
+    dark = np.full(raw.shape[1:], 100, np.uint16)
+    tifffile.imwrite(folder / "dark.tif", dark, photometric="minisblack")
+    return JobFiles(folder=folder, model=volrecon.PSFModel.load(folder / "model"),
+                    raw=raw, dark=dark)
+
+
 def read_volumes(store: Path) -> np.ndarray:
     """The (T, Z, Y, X) image of an output store."""
     import zarr

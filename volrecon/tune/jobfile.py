@@ -1,0 +1,126 @@
+"""Write the tuned settings into a copy of the job file (or the file itself).
+
+Only ``[solver] tv``, ``l1`` and ``iterations`` change; every other key stays as written
+(defaults are not filled in). Relative paths are rewritten so they still point at the same
+files from the new file's folder. The result is checked against ``schemas/job.schema.json``
+before anything is written, and written atomically (a temporary file, then a rename), so a
+failed write never leaves half a job file. Comments of the original file are not kept
+(TOML writers do not carry them); a header comment records where the values came from.
+"""
+
+from __future__ import annotations
+
+import copy
+import os
+import tomllib
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+from volrecon.errors import InputFileError
+
+if TYPE_CHECKING:
+    from volrecon.tune.tune import TuneResult
+
+__all__ = ["tuned_document", "write_tuned_job"]
+
+
+def tuned_document(result: TuneResult, *, directory: str | os.PathLike[str] | None = None
+                   ) -> dict[str, Any]:
+    """The job document with the tuned ``[solver]`` values.
+
+    Parameters
+    ----------
+    result : TuneResult
+    directory : str or path, optional
+        Folder the new job file will live in; relative paths are rewritten for it. Default:
+        the original job's folder (paths unchanged).
+
+    Returns
+    -------
+    dict
+        A new document (the original is not modified).
+
+    Raises
+    ------
+    InputFileError
+        If the original job file can no longer be read.
+    """
+    from volrecon.pipeline.config import PATH_KEYS
+
+    job = result.job
+    source = Path(job.source)
+    if source.is_file():
+        try:
+            document = tomllib.loads(source.read_text(encoding="utf-8"))
+        except (OSError, tomllib.TOMLDecodeError) as exc:
+            raise InputFileError(f"{source}: cannot read the job file again ({exc}); it "
+                                 "changed during tuning") from exc
+    else:
+        document = copy.deepcopy(job.document)
+    solver = document.setdefault("solver", {})
+    solver["tv"] = result.tv
+    solver["l1"] = result.l1
+    solver["iterations"] = result.iteration_count
+    target = Path(directory).resolve() if directory is not None else job.base_dir.resolve()
+    if target != job.base_dir.resolve():
+        for section, key in PATH_KEYS:
+            text = document.get(section, {}).get(key)
+            if isinstance(text, str) and not Path(os.path.expanduser(text)).is_absolute():
+                absolute = (job.base_dir / text).resolve()
+                document[section][key] = Path(os.path.relpath(absolute, target)).as_posix()
+    return document
+
+
+def write_tuned_job(result: TuneResult, path: str | os.PathLike[str], *,
+                    report: str | os.PathLike[str] | None = None) -> Path:
+    """Write the job file with the tuned settings to `path` (may be the job file itself).
+
+    Parameters
+    ----------
+    result : TuneResult
+    path : str or path
+        The file to write (TOML).
+    report : str or path, optional
+        The report folder, named in the header comment.
+
+    Returns
+    -------
+    Path
+        `path`.
+
+    Raises
+    ------
+    ConfigError
+        If the tuned document breaks the job schema (it is not written then).
+    InputFileError
+        If `path` cannot be written.
+    """
+    import tomli_w
+
+    from volrecon.pipeline.config import job_from_dict
+
+    out = Path(path)
+    document = tuned_document(result, directory=out.parent)
+    job_from_dict(document, base_dir=out.parent.resolve(), source=str(out))
+    choice = result.choice
+    frames = ", ".join(map(str, result.site_frames))
+    header = [
+        "# Solver settings chosen by `volrecon tune` on video frames "
+        f"{frames} of {result.job.source}:",
+        f"#   tv = {result.tv:g}, l1 = {result.l1:g} by {choice.criterion} "
+        f"(weight unit u = {result.weight_unit:.4g}); iterations = {result.iteration_count} "
+        f"(within {result.iterations.tolerance:g} of the converged result"
+        + ("" if result.iterations.within_tolerance else ", NOT reached") + ").",
+    ]
+    if report is not None:
+        header.append(f"#   Report: {Path(report)}")
+    text = "\n".join(header) + "\n\n" + tomli_w.dumps(document)
+    temporary = out.with_name(f".{out.name}.{os.getpid()}.partial")
+    try:
+        temporary.write_text(text, encoding="utf-8")
+        os.replace(temporary, out)
+    except OSError as exc:
+        temporary.unlink(missing_ok=True)
+        raise InputFileError(f"{out}: cannot write the tuned job file ({exc.strerror}); "
+                             "choose another --out") from exc
+    return out

@@ -11,7 +11,7 @@
 
 from volrecon.tune.criteria import CRITERIA, Choice, choose_cell
 from volrecon.tune.iterations import IterationCheck
-from volrecon.tune.jobfile import tuned_document, write_tuned_job
+from volrecon.tune.jobfile import check_output_path, tuned_document, write_tuned_job
 from volrecon.tune.noise import FrameNoise, dark_statistics, estimate_frame_noise
 from volrecon.tune.reference import RegisteredScore, register_translation, registered_correlation
 from volrecon.tune.report import report_dict, summary_text, write_report
@@ -28,6 +28,7 @@ __all__ = [
     "Site",
     "SweepCell",
     "TuneResult",
+    "check_output_path",
     "choose_cell",
     "choose_site_frames",
     "dark_statistics",

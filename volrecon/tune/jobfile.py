@@ -16,12 +16,29 @@ import tomllib
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from volrecon.errors import InputFileError
+from volrecon.errors import ConfigError, InputFileError
 
 if TYPE_CHECKING:
     from volrecon.tune.tune import TuneResult
 
-__all__ = ["tuned_document", "write_tuned_job"]
+__all__ = ["check_output_path", "tuned_document", "write_tuned_job"]
+
+
+def check_output_path(path: str | os.PathLike[str], *, what: str = "--out") -> Path:
+    """Refuse an output path whose folder is missing or that is a folder (before any work).
+
+    Raises
+    ------
+    ConfigError
+        If `path` cannot be a file written later.
+    """
+    out = Path(path)
+    if out.is_dir():
+        raise ConfigError(f"{what} {out}: is a folder; give a file name such as tuned.toml")
+    if not out.parent.is_dir():
+        raise ConfigError(f"{what} {out}: the folder {out.parent} does not exist; create it "
+                          "or choose another path")
+    return out
 
 
 def tuned_document(result: TuneResult, *, directory: str | os.PathLike[str] | None = None

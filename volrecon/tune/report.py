@@ -91,7 +91,7 @@ def summary_text(result: TuneResult) -> str:
         f"chosen: tv = {result.tv:g}, l1 = {result.l1:g}, iterations = {check.chosen}",
         f"  by {choice.criterion}: {CRITERIA[choice.criterion]}",
         f"  weights in units of u = {result.weight_unit:.4g} (back-projected noise of one "
-        f"voxel): tv = {chosen.tv_units:g} u, l1 = {chosen.l1_units:g} u",
+        f"voxel): tv = {chosen.tv_units:.3g} u, l1 = {chosen.l1_units:.3g} u",
         f"noise: gain {noise.gain_adu_per_electron:.4g} counts/electron"
         + ("" if math.isnan(noise.gain_stderr) else f" (+- {noise.gain_stderr:.2g})")
         + f" by photon transfer; zero-signal variance {float(noise.intercept_yx.mean()):.4g}"
@@ -201,9 +201,9 @@ def _plots(result: TuneResult, out: Path) -> list[Path]:
             ax.set_yticks([])
             cell = lookup.get((tv, l1))
             if j == 0:
-                ax.set_ylabel(f"tv {tv:g} u", fontsize=7)
+                ax.set_ylabel(f"tv {tv:.3g} u", fontsize=7)
             if i == len(tvs) - 1:
-                ax.set_xlabel(f"l1 {l1:g} u", fontsize=7)
+                ax.set_xlabel(f"l1 {l1:.3g} u", fontsize=7)
             if cell is None:
                 ax.set_frame_on(False)
                 continue
@@ -236,12 +236,15 @@ def _plots(result: TuneResult, out: Path) -> list[Path]:
             line = sorted((c.tv_units, value(c)) for c in cells if c.l1_units == l1)
             if line:
                 ax.plot([x for x, _ in line], [y for _, y in line], "o-", ms=3,
-                        label=f"l1 {l1:g} u")
+                        label=f"l1 {l1:.3g} u")
         ax.plot([chosen.tv_units], [value(chosen)], "s", ms=9, mfc="none",
                 mec=_CHOSEN_COLOUR, mew=2, label="chosen")
         ax.set_xscale("symlog", linthresh=smallest)
         ax.set_xlabel("tv (units of u)")
         ax.set_title(name, fontsize=9)
+        finite = [value(c) for c in cells if value(c) is not None and np.isfinite(value(c))]
+        if name.startswith("prediction") and finite and min(finite) > 0:
+            ax.set_yscale("log")
         if name.startswith("discrepancy"):
             ax.axhline(1.0, color="0.5", lw=0.8, ls="--")
             ax.axhline(result.choice.discrepancy_limit, color=_CHOSEN_COLOUR, lw=0.8, ls=":")
@@ -280,7 +283,8 @@ def _plots(result: TuneResult, out: Path) -> list[Path]:
                 label=f"fit: gain {noise.gain_adu_per_electron:.3g}")
     ax.set_xlabel("mean signal (counts, times slope factor)")
     ax.set_ylabel("variance (counts²)")
-    ax.set_title("photon transfer (EMVA 1288)", fontsize=9)
+    ax.set_title("photon transfer (EMVA 1288); bins by the noisy mean flatten at the ends,\n"
+                 "the gain comes from unbiased sums over all pixels", fontsize=8)
     ax.legend(fontsize=7)
     fig.tight_layout()
     files.append(_save(fig, out / "noise.png"))

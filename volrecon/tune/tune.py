@@ -47,7 +47,7 @@ from volrecon.tune.sweep import (
 )
 
 if TYPE_CHECKING:
-    from volrecon.models.base import PSFModel
+    from volrecon.models.base import Geometry, PSFModel
     from volrecon.pipeline.config import JobConfig
 
 __all__ = ["TuneResult", "tune_job"]
@@ -90,6 +90,8 @@ class TuneResult:
         The reference volume, if one was given.
     seconds : float
         Wall-clock time of the run.
+    geometry : Geometry
+        Sampling of the model's volume grid (for display).
     """
 
     job: JobConfig
@@ -104,6 +106,7 @@ class TuneResult:
     baseline_check: SweepCell = field(repr=False)
     reference_path: str | None
     seconds: float
+    geometry: Geometry
 
     @property
     def chosen(self) -> SweepCell:
@@ -329,16 +332,16 @@ def tune_job(job: JobConfig | str | os.PathLike[str], *, frames: Sequence[int] |
                    reference_volume, client)
     best = cells[_choose(cells, reference_volume is not None).index]
     fine = fine_grid(best.tv_units, best.l1_units, coarse)
-    say(f"fine sweep: {len(fine)} settings around tv = {best.tv_units:g} u, "
-        f"l1 = {best.l1_units:g} u")
+    say(f"fine sweep: {len(fine)} settings around tv = {best.tv_units:.3g} u, "
+        f"l1 = {best.l1_units:.3g} u")
     cells += _cells(model, sites, noise, unit, fine, sweep_iterations, call, job, 1,
                     reference_volume, client)
     stable = stabilities([(c.tv_units, c.l1_units) for c in cells], [c.volumes for c in cells])
     cells = [_replace_stability(c, s) for c, s in zip(cells, stable, strict=True)]
     choice = _choose(cells, reference_volume is not None)
     chosen = cells[choice.index]
-    say(f"chosen by {choice.criterion}: tv = {chosen.tv:.3g} ({chosen.tv_units:g} u), "
-        f"l1 = {chosen.l1:.3g} ({chosen.l1_units:g} u)")
+    say(f"chosen by {choice.criterion}: tv = {chosen.tv:.3g} ({chosen.tv_units:.3g} u), "
+        f"l1 = {chosen.l1:.3g} ({chosen.l1_units:.3g} u)")
 
     # Iterations on as many sites as there are workers (the chains run in parallel).
     order = sorted(range(len(sites)), key=lambda i: abs(i - (len(sites) - 1) / 2))
@@ -372,7 +375,8 @@ def tune_job(job: JobConfig | str | os.PathLike[str], *, frames: Sequence[int] |
     return TuneResult(job=job, sites=sites, noise=noise, weight_unit=unit,
                       sweep_iterations=sweep_iterations, cells=tuple(cells), choice=choice,
                       iterations=check, chosen_check=final[0], baseline_check=final[1],
-                      reference_path=reference_name, seconds=time.perf_counter() - started)
+                      reference_path=reference_name, seconds=time.perf_counter() - started,
+                      geometry=model.geometry)
 
 
 def _replace_stability(cell: SweepCell, value: float) -> SweepCell:

@@ -217,6 +217,92 @@ def _run_demo(args: argparse.Namespace) -> int:
     return 0
 
 
+def _add_tune(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    from volrecon.tune.tune import (
+        DEFAULT_MAX_ITERATIONS,
+        DEFAULT_REFERENCE_ITERATIONS,
+        DEFAULT_SITES,
+        DEFAULT_SWEEP_ITERATIONS,
+        DEFAULT_TOLERANCE,
+    )
+
+    p = sub.add_parser(
+        "tune", help="choose tv, l1 and iterations on a few frames; write them to a job file",
+        description="Sweep tv x l1 (coarse to fine, in units of the back-projected noise) on "
+        "a few frames spread through the video, score each setting without ground truth "
+        "(discrepancy principle, held-out neighbouring frames, stability) or against "
+        "--reference, pick the iteration count within --tolerance of the converged result, "
+        "and write the values into a copy of the job file with a report.")
+    p.add_argument("job", metavar="JOB.toml", help="job file (see schemas/job.schema.json)")
+    p.add_argument("--frames", metavar="T1,T2,...", help="video frames to tune on (each needs "
+                   "both neighbours); default: --sites frames spread through the job")
+    p.add_argument("--sites", type=int, default=DEFAULT_SITES, metavar="N",
+                   help=f"number of frames when --frames is not given (default {DEFAULT_SITES})")
+    p.add_argument("--reference", metavar="REF.tif", help="registered reference z-stack on the "
+                   "model grid (Z, Y, X); then the correlation after registration decides")
+    target = p.add_mutually_exclusive_group()
+    target.add_argument("--out", metavar="TUNED.toml",
+                        help="job file to write (default: JOB.tuned.toml beside the job)")
+    target.add_argument("--in-place", action="store_true",
+                        help="write the tuned values into JOB.toml itself")
+    p.add_argument("--report", metavar="DIR",
+                   help="report folder (default: the written file's name + .report)")
+    p.add_argument("--sweep-iterations", type=int, default=DEFAULT_SWEEP_ITERATIONS,
+                   metavar="N", help="iterations per sweep reconstruction "
+                   f"(default {DEFAULT_SWEEP_ITERATIONS})")
+    p.add_argument("--max-iterations", type=int, default=DEFAULT_MAX_ITERATIONS, metavar="N",
+                   help=f"largest iteration count considered (default {DEFAULT_MAX_ITERATIONS})")
+    p.add_argument("--reference-iterations", type=int, default=DEFAULT_REFERENCE_ITERATIONS,
+                   metavar="N", help="iterations of the converged chain "
+                   f"(default {DEFAULT_REFERENCE_ITERATIONS})")
+    p.add_argument("--tolerance", type=float, default=DEFAULT_TOLERANCE, metavar="F",
+                   help="accepted relative change from the converged result "
+                   f"(default {DEFAULT_TOLERANCE:g})")
+    p.add_argument("--gain", type=float, metavar="K",
+                   help="camera gain, counts per electron (default: measured by photon transfer)")
+    p.add_argument("--quiet", action="store_true", help="no progress lines on stderr")
+    p.add_argument("--view", action="store_true", help="show the sweep in napari afterwards")
+    p.set_defaults(run=_run_tune)
+
+
+def _run_tune(args: argparse.Namespace) -> int:
+    from pathlib import Path
+
+    from volrecon.tune import check_output_path, tune_job, write_report, write_tuned_job
+    from volrecon.tune.report import summary_text
+
+    frames = None
+    if args.frames is not None:
+        try:
+            frames = [int(part) for part in args.frames.split(",") if part.strip()]
+        except ValueError:
+            from volrecon.errors import ConfigError
+
+            raise ConfigError(f"--frames {args.frames!r}: not a comma-separated list of video "
+                              "frame numbers; write e.g. --frames 10,200,400") from None
+    job_path = Path(args.job)
+    out = job_path if args.in_place else Path(args.out) if args.out else \
+        job_path.with_name(f"{job_path.stem}.tuned.toml")
+    report = Path(args.report) if args.report else out.with_name(f"{out.stem}.report")
+    check_output_path(out)
+    check_output_path(report, what="--report", folder=True)
+    result = tune_job(
+        job_path, frames=frames, n_sites=args.sites, reference=args.reference,
+        sweep_iterations=args.sweep_iterations, max_iterations=args.max_iterations,
+        reference_iterations=args.reference_iterations, tolerance=args.tolerance,
+        gain_adu_per_electron=args.gain,
+        progress=None if args.quiet else lambda line: print(line, file=sys.stderr))
+    write_report(result, report)
+    write_tuned_job(result, out, report=report)
+    print(summary_text(result), end="")
+    print(f"tuned job written to {out}; report in {report}")
+    if args.view:
+        from volrecon.napari.sweep import view_sweep
+
+        return view_sweep(result)
+    return 0
+
+
 _COMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [  # type: ignore[type-arg]
     _add_demo,
     _add_bench,
@@ -225,6 +311,7 @@ _COMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [  # type: ignor
     _add_status,
     _add_export,
     _add_view,
+    _add_tune,
 ]
 
 

@@ -9,7 +9,7 @@ import pytest
 import tifffile
 from scipy.ndimage import gaussian_filter
 
-from volrecon.errors import DataError, ShapeError
+from volrecon.errors import DataError, ShapeError, VolreconWarning
 from volrecon.io.correct import FrameCorrection
 from volrecon.simulate import Camera
 from volrecon.tune.noise import dark_statistics, estimate_frame_noise
@@ -108,6 +108,16 @@ def test_without_dark_frames_the_intercept_is_fitted(rng: np.random.Generator):
     textbook = _textbook_variance(CAMERA, photons)
     np.testing.assert_allclose(noise.variance(signal).mean(), textbook.mean(), rtol=0.05)
     assert noise.dark_frames == 0 and not noise.dark_mean_variance_yx.any()
+
+
+def test_without_dark_frames_a_dim_scene_warns(rng: np.random.Generator):
+    shape = (64, 64)
+    photons = _scene(rng, shape, 3.0)
+    correction = FrameCorrection.build(dark_yx=np.full(shape, CAMERA.offset_adu, np.float32))
+    triples = [correction.apply(CAMERA.expose(np.stack([photons] * 3), rng=rng))
+               for _ in range(2)]
+    with pytest.warns(VolreconWarning, match="give a dark stack"):
+        estimate_frame_noise(triples, correction)
 
 
 def test_given_gain_is_used(rng: np.random.Generator):

@@ -24,16 +24,28 @@ if TYPE_CHECKING:
 __all__ = ["check_output_path", "tuned_document", "write_tuned_job"]
 
 
-def check_output_path(path: str | os.PathLike[str], *, what: str = "--out") -> Path:
-    """Refuse an output path whose folder is missing or that is a folder (before any work).
+def check_output_path(path: str | os.PathLike[str], *, what: str = "--out",
+                      folder: bool = False) -> Path:
+    """Refuse an output path that cannot be written later (checked before any work).
+
+    Parameters
+    ----------
+    path : str or path
+        A file to write (or, with `folder`, a folder to create).
+    what : str
+        The option's name, for the message.
+    folder : bool
+        `path` is a folder (it may exist as one, but not as a file).
 
     Raises
     ------
     ConfigError
-        If `path` cannot be a file written later.
+        If its parent folder is missing, or it exists as the wrong kind.
     """
     out = Path(path)
-    if out.is_dir():
+    if folder and out.exists() and not out.is_dir():
+        raise ConfigError(f"{what} {out}: is a file; give a folder for the report")
+    if not folder and out.is_dir():
         raise ConfigError(f"{what} {out}: is a folder; give a file name such as tuned.toml")
     if not out.parent.is_dir():
         raise ConfigError(f"{what} {out}: the folder {out.parent} does not exist; create it "

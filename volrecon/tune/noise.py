@@ -192,7 +192,8 @@ def _corrected_maps(raw_variance_yx: np.ndarray | None, correction: FrameCorrect
         if b == 1:
             return a
         ny, nx = a.shape
-        return a.reshape(ny // b, b, nx // b, b).mean(axis=(1, 3))
+        out: np.ndarray = a.reshape(ny // b, b, nx // b, b).mean(axis=(1, 3))
+        return out
 
     slope = block_mean(inverse_gain) / (b * b)
     intercept = None
@@ -286,7 +287,8 @@ def estimate_frame_noise(triples: Sequence[np.ndarray], correction: FrameCorrect
     q = np.tile(slope_map.ravel(), len(stack))
     x_all = q * means
     known = intercept_map is not None
-    c_all = np.tile(intercept_map.ravel(), len(stack)) if known else np.zeros_like(x_all)
+    c_all = (np.tile(intercept_map.ravel(), len(stack)) if intercept_map is not None
+             else np.zeros_like(x_all))
     keep, transfer = _clip_by_bins(x_all, second, c_all)
     x, y, c = x_all[keep], second[keep] ** 2 / SECOND_DIFFERENCE_GAIN, c_all[keep]
     if gain_adu_per_electron is not None:
@@ -323,7 +325,8 @@ def estimate_frame_noise(triples: Sequence[np.ndarray], correction: FrameCorrect
             f"{gain:.3g}); the video may be saturated, empty or repeated frames; give the "
             "camera gain instead"
         )
-    intercept = intercept_map if known else np.full((ny, nx), max(offset, 0.0))
+    intercept = intercept_map if intercept_map is not None else np.full((ny, nx),
+                                                                        max(offset, 0.0))
     if not known:
         transfer = dataclasses.replace(transfer, intercept=np.full(transfer.mean.shape, offset))
     # The subtracted dark mean of N frames carries 1/N of a dark frame's variance.

@@ -20,6 +20,8 @@ from volrecon.errors import InputFileError
 from volrecon.tune.criteria import CRITERIA
 
 if TYPE_CHECKING:
+    from collections.abc import Callable
+
     from volrecon.tune.sweep import SweepCell
     from volrecon.tune.tune import TuneResult
 
@@ -222,11 +224,12 @@ def _plots(result: TuneResult, out: Path) -> list[Path]:
     files.append(_save(fig, out / "sweep.png"))
 
     # Score curves against tv, one line per l1.
-    panels = [("discrepancy ρ", lambda c: c.mean_discrepancy),
-              ("prediction error / pixel", lambda c: c.mean_prediction_error),
-              ("stability (relative change)", lambda c: c.stability)]
+    panels: list[tuple[str, Callable[[SweepCell], float]]] = [
+        ("discrepancy ρ", lambda c: c.mean_discrepancy),
+        ("prediction error / pixel", lambda c: c.mean_prediction_error),
+        ("stability (relative change)", lambda c: c.stability)]
     if chosen.reference is not None:
-        panels.append(("reference correlation", lambda c: c.mean_reference))
+        panels.append(("reference correlation", lambda c: c.mean_reference or math.nan))
     fig = Figure(figsize=(3.6 * len(panels), 3.4))
     FigureCanvasAgg(fig)
     axes = fig.subplots(1, len(panels), squeeze=False)[0]
@@ -242,7 +245,7 @@ def _plots(result: TuneResult, out: Path) -> list[Path]:
         ax.set_xscale("symlog", linthresh=smallest)
         ax.set_xlabel("tv (units of u)")
         ax.set_title(name, fontsize=9)
-        finite = [value(c) for c in cells if value(c) is not None and np.isfinite(value(c))]
+        finite = [value(c) for c in cells if math.isfinite(value(c))]
         if name.startswith("prediction") and finite and min(finite) > 0:
             ax.set_yscale("log")
         if name.startswith("discrepancy"):

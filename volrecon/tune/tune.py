@@ -30,7 +30,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from volrecon.errors import ConfigError, ShapeError
+from volrecon.errors import ConfigError, DataError, InputFileError, ShapeError
 from volrecon.tune.criteria import Choice, choose_cell, stabilities
 from volrecon.tune.execute import run_calls
 from volrecon.tune.iterations import IterationCheck, candidate_counts, chain_error
@@ -143,11 +143,18 @@ def _read_reference(reference: str | os.PathLike[str] | np.ndarray, model: PSFMo
     if isinstance(reference, np.ndarray):
         volume, name = np.asarray(reference, dtype=np.float32), None
     else:
-        from volrecon.io.frames import TiffFrames
+        import struct
+
+        import tifffile
 
         name = os.fspath(reference)
-        source = TiffFrames.open(name)
-        volume = source.read(0, source.n_frames).astype(np.float32)
+        if not os.path.isfile(name):
+            raise InputFileError(f"{name}: no such file; check --reference")
+        try:
+            volume = np.asarray(tifffile.imread(name), dtype=np.float32)
+        except (ValueError, OSError, struct.error, KeyError) as exc:
+            raise InputFileError(f"{name}: cannot read the reference z-stack ({exc}); give a "
+                                 "TIFF with one page per plane") from exc
     where = name or "reference"
     if volume.shape != tuple(model.shape_in):
         raise ShapeError(
@@ -155,7 +162,7 @@ def _read_reference(reference: str | os.PathLike[str] | np.ndarray, model: PSFMo
             "(Z, Y, X); resample the reference z-stack onto the model's planes and pixels"
         )
     if not np.all(np.isfinite(volume)):
-        raise ShapeError(f"{where}: holds NaN or Inf; give a clean z-stack")
+        raise DataError(f"{where}: holds NaN or Inf; give a clean z-stack")
     return volume, name
 
 

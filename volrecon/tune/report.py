@@ -28,6 +28,8 @@ if TYPE_CHECKING:
 __all__ = ["report_dict", "summary_text", "write_report"]
 
 _CHOSEN_COLOUR = "#e8202a"
+#: Flag a chosen cell whose stability value exceeds the sweep's median by this factor.
+STEEP_FACTOR = 2.0
 
 
 def _cell_dict(cell: SweepCell) -> dict[str, Any]:
@@ -48,7 +50,8 @@ def report_dict(result: TuneResult) -> dict[str, Any]:
         "job": result.job.source,
         "frames": list(result.site_frames),
         "chosen": {"tv": result.tv, "l1": result.l1, "iterations": result.iteration_count,
-                   "criterion": choice.criterion},
+                   "criterion": choice.criterion, "confirmation": result.confirmation},
+        "sweep_choice": _cell_dict(result.cells[choice.index]),
         "no_truth_choice": _cell_dict(result.cells[choice.prediction_index]),
         "morozov_choice": _cell_dict(result.cells[choice.morozov_index]),
         "criteria": CRITERIA,
@@ -92,6 +95,8 @@ def summary_text(result: TuneResult) -> str:
         f"reconstruction; {len(result.cells)} settings",
         f"chosen: tv = {result.tv:g}, l1 = {result.l1:g}, iterations = {check.chosen}",
         f"  by {choice.criterion}: {CRITERIA[choice.criterion]}",
+        f"  confirmation at {check.chosen} iterations against tv = l1 = 0: "
+        f"{result.confirmation}",
         f"  weights in units of u = {result.weight_unit:.4g} (back-projected noise of one "
         f"voxel): tv = {chosen.tv_units:.3g} u, l1 = {chosen.l1_units:.3g} u",
         f"noise: gain {noise.gain_adu_per_electron:.4g} counts/electron"
@@ -111,6 +116,12 @@ def summary_text(result: TuneResult) -> str:
         f"stability of the chosen cell: {chosen.stability:.3g}",
         f"  {CRITERIA['stability']}",
     ]
+    values = [c.stability for c in result.cells if math.isfinite(c.stability)]
+    if values and math.isfinite(chosen.stability) and \
+            chosen.stability > STEEP_FACTOR * float(np.median(values)):
+        lines.append(f"  note: the result changes steeply around the chosen setting "
+                     f"({chosen.stability:.3g} against a median of {np.median(values):.3g}); "
+                     "tune on more frames (--sites) to confirm it")
     if choice.criterion == "reference":
         no_truth = result.cells[choice.prediction_index]
         lines += [f"reference correlation of the chosen cell: {chosen.mean_reference:.3f} "

@@ -14,8 +14,9 @@ Order of work (nothing is written; see :func:`volrecon.tune.write_tuned_job` and
    and scored (:mod:`volrecon.tune.criteria`);
 5. for the chosen weights, the iteration count is the smallest within a tolerance of the
    converged warm-start chain (:mod:`volrecon.tune.iterations`);
-6. the chosen weights and ``tv = l1 = 0`` are both reconstructed at that count, for the
-   report's comparison.
+6. the chosen weights and ``tv = l1 = 0`` are both reconstructed at that count and scored
+   by the same rule: the sweep ran fewer iterations, where stopping early regularises too,
+   so weights that no longer beat ``tv = l1 = 0`` at the job's count are dropped.
 """
 
 from __future__ import annotations
@@ -55,11 +56,11 @@ __all__ = ["TuneResult", "tune_job"]
 logger = logging.getLogger(__name__)
 
 #: Defaults of :func:`tune_job` (also used by the CLI).
-DEFAULT_SITES = 3
+DEFAULT_SITES = 2
 DEFAULT_SWEEP_ITERATIONS = 40
 DEFAULT_MAX_ITERATIONS = 160
 DEFAULT_REFERENCE_ITERATIONS = 240
-DEFAULT_TOLERANCE = 0.05
+DEFAULT_TOLERANCE = 0.1
 
 
 @dataclass(frozen=True, eq=False)
@@ -81,11 +82,17 @@ class TuneResult:
     cells : tuple of SweepCell
         Every setting tried, coarse stage first.
     choice : Choice
-        Which cell won and by which criterion.
+        Which cell the sweep chose and by which criterion.
+    index : int
+        The cell finally chosen: ``choice.index``, or the ``tv = l1 = 0`` cell when that
+        scored better at the chosen iteration count (see `confirmation`).
+    confirmation : str
+        "kept", or why the sweep's choice was replaced.
     iterations : IterationCheck
         The iteration count and the errors behind it.
     chosen_check, baseline_check : SweepCell
-        The chosen weights and ``tv = l1 = 0`` at the chosen iteration count (stage 2).
+        The chosen weights and ``tv = l1 = 0`` at the chosen iteration count (stage 2; the
+        same cell twice when the confirmation chose ``tv = l1 = 0``).
     reference_path : str or None
         The reference volume, if one was given.
     seconds : float
@@ -101,6 +108,8 @@ class TuneResult:
     sweep_iterations: int
     cells: tuple[SweepCell, ...] = field(repr=False)
     choice: Choice
+    index: int
+    confirmation: str
     iterations: IterationCheck
     chosen_check: SweepCell = field(repr=False)
     baseline_check: SweepCell = field(repr=False)
@@ -110,8 +119,8 @@ class TuneResult:
 
     @property
     def chosen(self) -> SweepCell:
-        """The winning cell of the sweep."""
-        return self.cells[self.choice.index]
+        """The cell finally chosen (its weights go into the job file)."""
+        return self.cells[self.index]
 
     @property
     def tv(self) -> float:
@@ -377,11 +386,23 @@ def tune_job(job: JobConfig | str | os.PathLike[str], *, frames: Sequence[int] |
                            warm_errors=tuple(warms), reference_iterations=reference_iterations,
                            tolerance=tolerance, chain_frames=job.solver.chain_frames,
                            chosen=counts[-1], within_tolerance=within)
+    # Confirmation at the job's iteration count: the sweep ran fewer iterations, where
+    # stopping early regularises too; the weights must still beat tv = l1 = 0 here.
     final = _cells(model, sites, noise, unit, [(chosen.tv_units, chosen.l1_units), (0.0, 0.0)],
                    check.chosen, call, job, 2, reference_volume, client)
+    index, confirmation = choice.index, "kept"
+    if (chosen.tv_units, chosen.l1_units) != (0.0, 0.0) and \
+            _choose(final, reference_volume is not None).index == 1:
+        index = next(i for i, c in enumerate(cells) if (c.tv_units, c.l1_units) == (0.0, 0.0))
+        confirmation = (f"at {check.chosen} iterations tv = l1 = 0 scored better by "
+                        f"{choice.criterion} than the sweep's choice (tv = {chosen.tv:.3g}, "
+                        f"l1 = {chosen.l1:.3g}), so no regularisation is written")
+        final = [final[1], final[1]]
+    say(f"confirmation at {check.chosen} iterations: {confirmation}")
     return TuneResult(job=job, sites=sites, noise=noise, weight_unit=unit,
                       sweep_iterations=sweep_iterations, cells=tuple(cells), choice=choice,
-                      iterations=check, chosen_check=final[0], baseline_check=final[1],
+                      index=index, confirmation=confirmation, iterations=check,
+                      chosen_check=final[0], baseline_check=final[1],
                       reference_path=reference_name, seconds=time.perf_counter() - started,
                       geometry=model.geometry)
 

@@ -65,9 +65,11 @@ def read_tiff_stack(path: str | os.PathLike[str], *, what: str = "bead scan") ->
             series = tf.series[0]
             axes = series.axes
             data = series.asarray()
-    except (ValueError, struct.error, OSError, RuntimeError, IndexError) as exc:
+    except (ValueError, struct.error, OSError, RuntimeError, IndexError, KeyError, TypeError,
+            ArithmeticError, AssertionError) as exc:
         # tifffile raises TiffFileError (a ValueError), struct.error on a cut header,
-        # ValueError on cut image data and codec errors (RuntimeError) on bad compression.
+        # ValueError on cut image data, codec errors (RuntimeError) on bad compression, and
+        # KeyError, TypeError, ZeroDivisionError or a failed internal assert on nonsense tags.
         raise InputFileError(f"{p}: cannot read the {what} as TIFF ({exc}); the file is "
                              "damaged or not a TIFF, export it again") from exc
     finally:

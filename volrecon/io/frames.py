@@ -35,9 +35,14 @@ __all__ = [
     "read_image",
 ]
 
-#: Exceptions a damaged TIFF raises (TiffFileError is a ValueError; a cut header a struct.error).
-_TIFF_ERRORS: tuple[type[BaseException], ...] = (ValueError, struct.error, OSError, KeyError)
-_READ_ERRORS: tuple[type[BaseException], ...] = (*_TIFF_ERRORS, RuntimeError)
+#: Exceptions a damaged TIFF raises (TiffFileError is a ValueError; a cut header a struct.error;
+#: nonsense tag values give IndexError, TypeError, ZeroDivisionError or RuntimeError
+#: ("incompatible keyframe") deep in tifffile, or fail one of its internal asserts; codec
+#: errors are RuntimeErrors).
+_TIFF_ERRORS: tuple[type[BaseException], ...] = (ValueError, struct.error, OSError, KeyError,
+                                                 IndexError, TypeError, ArithmeticError,
+                                                 RuntimeError, AssertionError)
+_READ_ERRORS: tuple[type[BaseException], ...] = _TIFF_ERRORS
 _GLOB_CHARACTERS = frozenset("*?[")
 
 

@@ -131,7 +131,7 @@ def load_model(path: str | os.PathLike[str]) -> PSFModel:
         )
     kinds = model_kinds()
     kind = info.get("kind")
-    if kind not in kinds:
+    if not isinstance(kind, str) or kind not in kinds:
         raise ModelStoreError(
             f"{source}: attribute '{MODEL_ATTRIBUTE}/kind' is {kind!r}; known kinds: "
             f"{', '.join(sorted(kinds))}"
@@ -149,6 +149,12 @@ def load_model(path: str | os.PathLike[str]) -> PSFModel:
             f"{source}: attribute '{MODEL_ATTRIBUTE}/parameters' is not a table; re-run "
             "calibration"
         )
+    for child in sorted(source.iterdir()):
+        if child.is_dir() and not (child / "zarr.json").is_file():
+            raise ModelStoreError(
+                f"{source}: '{child.name}' has no zarr.json (the array's metadata); the store "
+                "is incomplete, re-run calibration"
+            )
     try:
         geometry = Geometry(float(info["depth_step_um"]), float(info["pixel_size_um"]),
                             float(info.get("depth_start_um", 0.0)))

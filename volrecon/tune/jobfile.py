@@ -133,13 +133,19 @@ def write_tuned_job(result: TuneResult, path: str | os.PathLike[str], *,
     job_from_dict(document, base_dir=out.parent.resolve(), source=str(out))
     choice = result.choice
     frames = ", ".join(map(str, result.site_frames))
+    how = (f"by {choice.criterion}" if result.confirmation == "kept" else
+           f"(the sweep chose tv = {result.cells[choice.index].tv:.3g}, l1 = "
+           f"{result.cells[choice.index].l1:.3g} by {choice.criterion}, but tv = l1 = 0 scored "
+           f"better at {result.iteration_count} iterations)")
     header = [
         "# Solver settings chosen by `volrecon tune` on video frames "
         f"{frames} of {result.job.source}:",
-        f"#   tv = {result.tv:g}, l1 = {result.l1:g} by {choice.criterion} "
-        f"(weight unit u = {result.weight_unit:.4g}); iterations = {result.iteration_count} "
-        f"(within {result.iterations.tolerance:g} of the converged result"
-        + ("" if result.iterations.within_tolerance else ", NOT reached") + ").",
+        f"#   tv = {result.tv:g}, l1 = {result.l1:g} {how}; weight unit u = "
+        f"{result.weight_unit:.4g}.",
+        f"#   iterations = {result.iteration_count}: within "
+        f"{result.iterations.tolerance:g} of the converged result"
+        + ("" if result.iterations.within_tolerance else " NOT reached; the largest count "
+           "tried") + ".",
     ]
     if report is not None:
         header.append(f"#   Report: {Path(report)}")

@@ -9,7 +9,8 @@ the sweep is scored), averaged over the chain the way the job's chains weigh it:
 chain of ``L`` frames has one cold frame and ``L − 1`` warm ones, so the cold error counts
 ``1/L`` and the mean warm error ``(L − 1)/L``. The chosen count is the smallest candidate
 whose error is at most `tolerance`, trying the counts in increasing order; if none is, the
-largest candidate is taken and the report says so.
+largest candidate is taken and the report says so. Candidates run with the job's own
+stopping rule (``tol``), as the job will; the converged chain runs with ``tol = 0``.
 """
 
 from __future__ import annotations

@@ -92,6 +92,7 @@ def _damage(data: bytes, edits: list[tuple[Any, ...]]) -> bytes:
 @example(base="pages", edits=[("cut", 0.90234375), ("byte", 0.390625, 0)])  # ZeroDivisionError
 @example(base="plain", edits=[("insert", 0.6875, bytes(16))])  # "incompatible keyframe"
 @example(base="plain", edits=[("word", 0.04296875, 0)])  # tifffile's internal assert
+@example(base="bigtiff", edits=[("cut", 0.453125), ("byte", 0.068359375, 11)])  # 2.75 GiB
 def test_damaged_tiffs_refused_cleanly(base, edits):
     with tempfile.TemporaryDirectory() as folder:
         path = Path(folder) / "video.tif"
@@ -144,6 +145,7 @@ def _edited_job(edits: list[tuple[Any, ...]]) -> dict[str, Any]:
 
 @FUZZ
 @given(edits=st.lists(_job_edit, min_size=1, max_size=4))
+@example(edits=[("section", "compute", {"\n": False})])  # a key with a line break
 def test_edited_job_files_refused_cleanly(edits):
     with tempfile.TemporaryDirectory() as folder:
         path = Path(folder) / "job.toml"

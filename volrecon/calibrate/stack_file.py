@@ -11,6 +11,7 @@ from pathlib import Path
 import numpy as np
 
 from volrecon.errors import InputFileError, ShapeError
+from volrecon.io.frames import tiff_page_problem
 
 __all__ = ["read_positions", "read_tiff_stack"]
 
@@ -64,7 +65,15 @@ def read_tiff_stack(path: str | os.PathLike[str], *, what: str = "bead scan") ->
         with tifffile.TiffFile(p) as tf:
             series = tf.series[0]
             axes = series.axes
+            size = p.stat().st_size
+            for index, page in enumerate(series.pages):
+                problem = None if page is None else tiff_page_problem(page, size)
+                if problem is not None:
+                    raise InputFileError(f"{p}: page {index} of the {what} cannot be read: "
+                                         f"{problem}; the file is damaged, export it again")
             data = series.asarray()
+    except InputFileError:
+        raise
     except (ValueError, struct.error, OSError, RuntimeError, IndexError, KeyError, TypeError,
             ArithmeticError, AssertionError) as exc:
         # tifffile raises TiffFileError (a ValueError), struct.error on a cut header,

@@ -33,6 +33,7 @@ __all__ = [
     "natural_sort_key",
     "open_frames",
     "read_image",
+    "tiff_page_problem",
 ]
 
 #: Exceptions a damaged TIFF raises (TiffFileError is a ValueError; a cut header a struct.error;
@@ -199,9 +200,62 @@ class TiffFrames(FrameSource):
                 del mapped
         import tifffile
 
+        size = os.path.getsize(self.path)
+        out = np.empty((stop - start, *self.shape[1:]), dtype=self.dtype)
         with tifffile.TiffFile(self.path) as tf:
-            return np.stack([tf.pages[i].asarray() for i in range(start, stop)]).astype(
-                self.dtype, copy=False)
+            for i in range(start, stop):
+                page = tf.pages[i]
+                problem = tiff_page_problem(page, size)
+                if problem is None and tuple(page.shape) != self.shape[1:]:
+                    problem = f"it has shape {tuple(page.shape)}, page 0 {self.shape[1:]}"
+                if problem is not None:
+                    raise InputFileError(
+                        f"{self.path}: page {i} cannot be read: {problem}; the file is damaged, "
+                        "copy it again from the camera"
+                    )
+                out[i - start] = page.asarray()
+        return out
+
+
+def _memory_bytes() -> int:
+    """Physical memory of this machine (a large number where the OS does not say)."""
+    try:
+        return int(os.sysconf("SC_PHYS_PAGES")) * int(os.sysconf("SC_PAGE_SIZE"))
+    except (ValueError, OSError, AttributeError):
+        return 1 << 50
+
+
+def tiff_page_problem(page: Any, file_size: int) -> str | None:
+    """Why a TIFF page's pixels cannot be read as its tags declare, or None if they can.
+
+    Checked on the tags alone, before any pixel is read: a damaged header can declare any
+    image size, and the TIFF reader allocates what is declared before it finds the data
+    missing.
+
+    Parameters
+    ----------
+    page : tifffile.TiffPage
+        The page.
+    file_size : int
+        Size of the file in bytes.
+
+    Returns
+    -------
+    str or None
+        The problem, in words, for an error message.
+    """
+    offsets, counts = tuple(page.dataoffsets), tuple(page.databytecounts)
+    if not offsets or len(offsets) != len(counts):
+        return "its tags point at no image data"
+    end = max(o + c for o, c in zip(offsets, counts, strict=True))
+    if end > file_size:
+        return f"its image data end at byte {end} but the file has {file_size} bytes"
+    declared = int(np.prod(page.shape, dtype=np.int64)) * np.dtype(page.dtype).itemsize
+    if int(getattr(page, "compression", 0)) == 1 and sum(counts) < declared:  # uncompressed
+        return f"its tags declare {declared} bytes of pixels but it holds {sum(counts)}"
+    if declared > _memory_bytes():
+        return f"its tags declare {declared} bytes of pixels, more than this machine's memory"
+    return None
 
 
 def _inspect_tiff(path: str, *, key: str = "[video] path"
@@ -260,6 +314,13 @@ def _inspect_tiff(path: str, *, key: str = "[video] path"
                     f"{path}: the last frame ends at byte {end} but the file has {size} bytes; "
                     "the file is truncated; copy it again from the camera"
                 )
+            for index in sorted({0, n_pages - 1}):
+                problem = tiff_page_problem(tf.pages[index], size)
+                if problem is not None:
+                    raise InputFileError(
+                        f"{path}: page {index} cannot be read: {problem}; the file is damaged, "
+                        "copy it again"
+                    )
             offset = None
             if len(series) == 1 and series[0].dataoffset is not None and n_pages == expected:
                 offset = int(series[0].dataoffset)

@@ -267,7 +267,13 @@ def _refuse_non_finite(value: Any, source: str, where: str = "") -> None:
         for item in value:
             _refuse_non_finite(item, source, where)
     elif isinstance(value, float) and not math.isfinite(value):
-        raise ConfigError(f"{source}: key '{where}' is {value}; use a finite number")
+        raise ConfigError(f"{source}: key '{_dotted([where])}' is {value}; use a finite number")
+
+
+def _dotted(parts: Any) -> str:
+    """A key path for messages, control characters escaped so the message stays one line."""
+    text = ".".join(str(p) for p in parts)
+    return "".join(c if c.isprintable() else repr(c)[1:-1] for c in text)
 
 
 def _validate(document: Any, source: str) -> None:
@@ -279,18 +285,18 @@ def _validate(document: Any, source: str) -> None:
     if not errors:
         return
     error = errors[0]
-    where = ".".join(str(p) for p in error.absolute_path)
+    where = _dotted(error.absolute_path)
     if error.validator == "additionalProperties":
         allowed = sorted(error.schema.get("properties", {}))
         unknown = sorted(set(error.instance) - set(allowed))
-        key = ".".join([*map(str, error.absolute_path), unknown[0]]) if unknown else where
+        key = _dotted([*error.absolute_path, unknown[0]]) if unknown else where
         raise ConfigError(
             f"{source}: unknown key '{key}'; allowed here: {', '.join(allowed)} "
             "(see schemas/job.schema.json)"
         )
     if error.validator == "required":
         missing = [name for name in error.validator_value if name not in error.instance]
-        key = ".".join([*map(str, error.absolute_path), missing[0]]) if missing else where
+        key = _dotted([*error.absolute_path, missing[0]]) if missing else where
         raise ConfigError(f"{source}: required key '{key}' is missing; add it to the job file")
     if error.validator == "type":
         expected = error.validator_value

@@ -16,7 +16,7 @@ import scipy.fft
 
 from volrecon.errors import BackendError, ConfigError
 
-__all__ = ["Backend", "available_cores", "get_backend", "split_threads"]
+__all__ = ["Backend", "available_cores", "get_backend", "physical_memory_bytes", "split_threads"]
 
 DEVICES = ("cpu", "gpu")
 
@@ -27,6 +27,17 @@ def available_cores() -> int:
         return max(1, len(os.sched_getaffinity(0)))
     except AttributeError:  # pragma: no cover - not on Linux
         return max(1, os.cpu_count() or 1)
+
+
+def physical_memory_bytes() -> int:
+    """Physical memory of this machine in bytes (2**50 where the OS does not say).
+
+    Readers compare sizes declared in file headers with it before allocating anything.
+    """
+    try:
+        return int(os.sysconf("SC_PHYS_PAGES")) * int(os.sysconf("SC_PAGE_SIZE"))
+    except (ValueError, OSError, AttributeError):  # pragma: no cover - not on Linux
+        return 1 << 50
 
 
 def split_threads(workers: int, *, cores: int | None = None) -> int:

@@ -222,6 +222,16 @@ def _(files: JobFiles) -> list[str]:
     return _run(files, "m.toml", model={"path": "modelbad"})
 
 
+@case("model_damaged_shape", "model array metadata declaring an absurd shape", "run",
+      "modelshape", "more than this machine's memory", "re-run calibration")
+def _(files: JobFiles) -> list[str]:
+    meta_file = _model_copy(files, "modelshape") / "psf" / "zarr.json"
+    meta = json.loads(meta_file.read_text())
+    meta["shape"] = [100_000, 100_000, 100_000]  # 4 PB of float32, never allocated
+    meta_file.write_text(json.dumps(meta))
+    return _run(files, "m.toml", model={"path": "modelshape"})
+
+
 @case("model_negative_step", "non-positive depth step in the model store", "run",
       "modelstep", "depth_step_um must be a positive number", "re-run calibration")
 def _(files: JobFiles) -> list[str]:

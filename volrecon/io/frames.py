@@ -20,6 +20,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from volrecon.backend import physical_memory_bytes
 from volrecon.errors import InputFileError, ShapeError
 
 if TYPE_CHECKING:
@@ -217,14 +218,6 @@ class TiffFrames(FrameSource):
         return out
 
 
-def _memory_bytes() -> int:
-    """Physical memory of this machine (a large number where the OS does not say)."""
-    try:
-        return int(os.sysconf("SC_PHYS_PAGES")) * int(os.sysconf("SC_PAGE_SIZE"))
-    except (ValueError, OSError, AttributeError):
-        return 1 << 50
-
-
 def tiff_page_problem(page: Any, file_size: int) -> str | None:
     """Why a TIFF page's pixels cannot be read as its tags declare, or None if they can.
 
@@ -253,7 +246,7 @@ def tiff_page_problem(page: Any, file_size: int) -> str | None:
     declared = int(np.prod(page.shape, dtype=np.int64)) * np.dtype(page.dtype).itemsize
     if int(getattr(page, "compression", 0)) == 1 and sum(counts) < declared:  # uncompressed
         return f"its tags declare {declared} bytes of pixels but it holds {sum(counts)}"
-    if declared > _memory_bytes():
+    if declared > physical_memory_bytes():
         return f"its tags declare {declared} bytes of pixels, more than this machine's memory"
     return None
 

@@ -17,6 +17,7 @@ from pathlib import Path
 
 import numpy as np
 
+from volrecon.backend import physical_memory_bytes
 from volrecon.errors import ModelStoreError
 from volrecon.models.base import Geometry, PSFModel
 
@@ -159,7 +160,14 @@ def load_model(path: str | os.PathLike[str]) -> PSFModel:
         geometry = Geometry(float(info["depth_step_um"]), float(info["pixel_size_um"]),
                             float(info.get("depth_start_um", 0.0)))
         root = zarr.open_group(zarr.storage.LocalStore(source), mode="r", zarr_format=3)
-        arrays = {key: np.asarray(arr[...]) for key, arr in root.arrays()}
+        stored = dict(root.arrays())
+        declared = sum(int(arr.nbytes) for arr in stored.values())
+        if declared > physical_memory_bytes():
+            raise ModelStoreError(
+                f"{source}: its arrays declare {declared} bytes, more than this machine's "
+                "memory; the store's metadata is damaged, re-run calibration"
+            )
+        arrays = {key: np.asarray(arr[...]) for key, arr in stored.items()}
         for key, array in arrays.items():
             if array.size and array.dtype.kind in "uif" and not np.any(array):
                 raise ModelStoreError(

@@ -4,6 +4,7 @@ the store ends bit-identical to an uninterrupted run."""
 from __future__ import annotations
 
 import json
+import shutil
 import signal
 import subprocess
 import sys
@@ -22,7 +23,7 @@ from volrecon.pipeline import load_job, run_job, store_status
 from volrecon.pipeline.lock import lock_path_for, read_lock
 from volrecon.pipeline.store import is_job_store
 
-N_FRAMES = 30
+N_FRAMES = 48
 #: Deadlines only end a hung child: a quiet machine never waits for them, and a heavily
 #: loaded one (the SIGINT waits for the tasks in flight) gets plenty of time.
 DEADLINE_S = 600
@@ -75,11 +76,16 @@ def test_interrupt_then_sigkill_then_resume_bit_identical(slow_job, capsys):
     run_job(load_job(folder / "reference.toml"))
     reference = read_store_arrays(folder / "reference.zarr")
 
-    # 1. Ctrl-C: a clean stop, lock released, run recorded as interrupted.
-    child = _start(slow_job)
-    _wait_for_done(store, child, at_least=2)
-    child.send_signal(signal.SIGINT)
-    _, err = child.communicate(timeout=DEADLINE_S)
+    # 1. Ctrl-C: a clean stop, lock released, run recorded as interrupted. On a fast machine
+    #    the run can finish before the signal lands (exit 0); then start over and try again.
+    for _attempt in range(3):
+        child = _start(slow_job)
+        _wait_for_done(store, child, at_least=2)
+        child.send_signal(signal.SIGINT)
+        _, err = child.communicate(timeout=DEADLINE_S)
+        if child.returncode != 0:
+            break
+        shutil.rmtree(store)
     assert child.returncode == 130, err
     assert "interrupted" in err and "run the same command again" in err
     assert not lock_path_for(store).exists()

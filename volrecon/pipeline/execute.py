@@ -26,7 +26,7 @@ if TYPE_CHECKING:
     from volrecon.pipeline.config import ComputeSettings
     from volrecon.pipeline.task import TaskContext, TaskSpec
 
-__all__ = ["execute_tasks", "fft_threads_per_task"]
+__all__ = ["execute_tasks", "fft_threads_per_task", "open_client"]
 
 logger = logging.getLogger(__name__)
 
@@ -132,7 +132,7 @@ def _execute_distributed(tasks: Sequence[TaskSpec], context: TaskContext,
 
     with contextlib.ExitStack() as stack:
         if client is None:
-            client = stack.enter_context(_open_client(compute))
+            client = stack.enter_context(open_client(compute))
         shared = client.scatter(context, broadcast=True, hash=False)
         window = max(2, WINDOW_TASKS_PER_THREAD * sum(client.nthreads().values()))
         run_id = uuid.uuid4().hex[:8]
@@ -160,7 +160,8 @@ def _execute_distributed(tasks: Sequence[TaskSpec], context: TaskContext,
 
 
 @contextlib.contextmanager
-def _open_client(compute: ComputeSettings) -> Iterator[Any]:
+def open_client(compute: ComputeSettings) -> Iterator[Any]:
+    """A dask.distributed client for ``[compute] scheduler`` (a LocalCluster or an address)."""
     from distributed import Client, LocalCluster
 
     if compute.scheduler == "local-cluster":

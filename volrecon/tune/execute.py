@@ -16,8 +16,6 @@ from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import Executor, ProcessPoolExecutor, ThreadPoolExecutor
 from typing import TYPE_CHECKING, Any
 
-from volrecon.errors import ConfigError
-
 if TYPE_CHECKING:
     from volrecon.models.base import PSFModel
     from volrecon.pipeline.config import ComputeSettings
@@ -79,22 +77,7 @@ def _scheduler(compute: ComputeSettings, client: Any) -> Iterator[tuple[Any, Exe
         finally:
             pool.shutdown(wait=True, cancel_futures=True)
         return
-    from distributed import Client, LocalCluster
+    from volrecon.pipeline.execute import open_client
 
-    if compute.scheduler == "local-cluster":
-        # Loopback only, no dashboard (as the job's own LocalCluster).
-        with LocalCluster(n_workers=compute.workers, threads_per_worker=1, processes=True,
-                          host="127.0.0.1", dashboard_address=None,
-                          scheduler_kwargs={"dashboard_address": "127.0.0.1:0"}
-                          ) as cluster, Client(cluster) as own:  # type: ignore[no-untyped-call]
-            yield own, None
-        return
-    try:
-        own = Client(compute.scheduler, timeout="30s")  # type: ignore[no-untyped-call]
-    except OSError as exc:
-        raise ConfigError(
-            f"compute.scheduler: cannot reach the dask scheduler at {compute.scheduler} "
-            f"({exc}); start it (dask scheduler) or fix the address"
-        ) from exc
-    with own:
+    with open_client(compute) as own:
         yield own, None

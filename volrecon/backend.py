@@ -73,11 +73,12 @@ class Backend:
             return self.fft.rfft2(a, s=shape_yx, workers=self.threads)
         return self.fft.rfft2(a, s=shape_yx)
 
-    def irfft2(self, a: Any, shape_yx: tuple[int, int]) -> Any:
-        """Inverse of :meth:`rfft2` on a grid of `shape_yx` (no cropping)."""
+    def irfft2(self, a: Any, shape_yx: tuple[int, int], *, overwrite: bool = False) -> Any:
+        """Inverse of :meth:`rfft2` on a grid of `shape_yx` (no cropping). With `overwrite`
+        the transform may use `a` as scratch space (it saves a copy of the spectrum)."""
         if self.device == "cpu":
-            return self.fft.irfft2(a, s=shape_yx, workers=self.threads)
-        return self.fft.irfft2(a, s=shape_yx)
+            return self.fft.irfft2(a, s=shape_yx, workers=self.threads, overwrite_x=overwrite)
+        return self.fft.irfft2(a, s=shape_yx, overwrite_x=overwrite)
 
     def irfft2_window(self, a: Any, shape_yx: tuple[int, int], window_yx: tuple[int, int], *,
                       reverse: bool = False) -> Any:

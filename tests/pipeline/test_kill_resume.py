@@ -19,6 +19,7 @@ from jobdata import assert_bit_identical, bead_video, gaussian_psf, read_store_a
 
 import volrecon
 from volrecon.cli import main
+from volrecon.errors import InputFileError
 from volrecon.pipeline import load_job, run_job, store_status
 from volrecon.pipeline.lock import lock_path_for, read_lock
 from volrecon.pipeline.store import is_job_store
@@ -62,7 +63,10 @@ def _wait_for_done(store: Path, child: subprocess.Popen[str], at_least: int) -> 
         if child.poll() is not None:
             pytest.fail(f"run ended early: {child.communicate()}")
         if is_job_store(store):
-            done = store_status(store).done
+            try:
+                done = store_status(store).done
+            except InputFileError:  # the child is still creating the store
+                done = 0
             if done >= at_least:
                 return done
         time.sleep(0.02)

@@ -53,6 +53,8 @@ def per_iteration_seconds(frame: Any, model: PSFModel, method: str, *, tv: float
 
     The fastest run is the one least disturbed by other load on the machine.
     """
+    # One short solve first: it loads (or compiles) the kernels and warms the FFT plans.
+    reconstruct(frame, model, method=method, iterations=2, tv=tv, l1=l1, tol=0.0)
     samples = []
     for _ in range(repeats):
         durations = []

@@ -1,0 +1,236 @@
+"""The element-wise and per-frequency steps of one ADMM iteration, fused.
+
+:mod:`volrecon.solvers.admm` is written in terms of five steps; this module gives each two
+implementations with one contract:
+
+* compiled (numba, CPU): each step is one pass over its arrays, split over the backend's
+  threads by depth planes (spatial steps) or frequency rows (the volume solve). Written without
+  the GIL, so the threads of a dask worker and the FFT threads run them side by side.
+* array (numpy or CuPy): whole-array expressions; the GPU path, and the reference the compiled
+  steps are tested against on the CPU.
+
+Measured at 32×512×512 (padded 1024²), 2 cores: the numpy ADMM+TV iteration spent ~1.3 s in
+~40 element-wise passes and temporaries beside 0.2 s of FFTs; the fused steps touch each array
+once or twice per iteration.
+
+Scaled duals are carried implicitly: ``wmg = v − γ`` and ``ymb = ∇v − β`` after each volume
+update, which removes the separate dual-update passes (``γ ← v − wmg`` is read where it is
+needed, see :func:`w_step`).
+"""
+
+from __future__ import annotations
+
+from concurrent.futures import ThreadPoolExecutor
+from itertools import pairwise
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from volrecon.solvers.tv import gradient, gradient_adjoint
+
+if TYPE_CHECKING:
+    from collections.abc import Callable
+
+    from volrecon._typing import Array
+    from volrecon.backend import Backend
+
+__all__ = ["ArraySteps", "CompiledSteps", "steps_for"]
+
+
+def steps_for(backend: Backend, *, compiled: bool | None = None) -> ArraySteps:
+    """The steps for `backend`: compiled on the CPU unless `compiled` is False."""
+    if compiled is None:
+        compiled = backend.device == "cpu"
+    return CompiledSteps(backend) if compiled else ArraySteps(backend)
+
+
+class ArraySteps:
+    """Whole-array implementation (numpy or CuPy)."""
+
+    def __init__(self, backend: Backend) -> None:
+        self.be = backend
+        self.xp = backend.xp
+
+    def tv_dual_step(self, v: Array, ymb: Array, y_out: Array | None, kappa: float, rho: float,
+                     wz: float) -> None:
+        """``y = ρ·shrink(∇v + β, κ)``, ``ymb ← ymb − ρ∇v + y`` (β = ∇v − ymb); y into `y_out`."""
+        xp = self.xp
+        g = gradient(v, wz)
+        u = 2 * g - ymb
+        norm = xp.sqrt((u * u).sum(axis=0))
+        factor = rho * (1 - kappa / xp.maximum(norm, kappa))
+        u *= factor
+        ymb += u
+        ymb -= rho * g
+        if y_out is not None:
+            y_out[...] = u
+
+    def w_step(self, v: Array, wmg: Array, rhs: Array | None, ymb: Array | None,
+               w_out: Array | None, thresh: float, rho: float, mu2: float, mu3: float,
+               wz: float, support_yx: tuple[int, int]) -> None:
+        """``w = Π_{support,≥0}(v + γ − thresh)``, ``wmg ← (1−ρ)v − γ + ρw``, and with TV
+        ``rhs = μ₃·wmg + μ₂∇ᵀymb``; w into `w_out`."""
+        xp = self.xp
+        ny, nx = support_yx
+        gamma = v - wmg
+        w = v + gamma
+        w -= thresh
+        xp.maximum(w, 0, out=w)
+        w[:, ny:, :] = 0
+        w[:, :ny, nx:] = 0
+        wmg[...] = (1 - rho) * v - gamma + rho * w
+        if rhs is not None and ymb is not None:
+            rhs[...] = mu3 * wmg + mu2 * gradient_adjoint(ymb, wz)
+        if w_out is not None:
+            w_out[...] = w
+
+    def volume_solve(self, r: Array, a: Array, xh: Array, lateral: Array | None, scale: float,
+                     mu1: float, mu2: float, mu3: float, e: float) -> Array:
+        """Solve ``(μ₁ a aᴴ + T) ṽ = scale·r + a·xh`` per lateral frequency, in place in `r`.
+
+        ``T = (μ₂L(f) + μ₃) I + e·N`` with N the Neumann depth Laplacian (tridiagonal, Thomas
+        algorithm) and ``a = conj(Ĥ)``; Sherman–Morrison handles the rank-one term. Returns
+        ``(M v)^ = aᴴṽ``.
+        """
+        xp = self.xp
+        nz = r.shape[0]
+        base = mu3 if lateral is None else mu2 * lateral + mu3
+        rhs = scale * r + a * xh
+        u = xp.empty_like(rhs)
+        p = xp.empty_like(a)
+        cp: list[Any] = []
+        for k in range(nz):
+            nk = 0.0 if nz == 1 else (1.0 if k in (0, nz - 1) else 2.0)
+            den = base + e * nk + (e * cp[k - 1] if k else 0.0)
+            inv = 1.0 / den
+            cp.append(-e * inv)
+            u[k] = ((rhs[k] + e * u[k - 1]) if k else rhs[k]) * inv
+            p[k] = ((a[k] + e * p[k - 1]) if k else a[k]) * inv
+        for k in range(nz - 2, -1, -1):
+            u[k] -= cp[k] * u[k + 1]
+            p[k] -= cp[k] * p[k + 1]
+        s = (a.conj() * u).sum(axis=0)
+        q = (a.conj() * p).real.sum(axis=0)
+        mv = s / (1 + mu1 * q)
+        r[...] = u - (mu1 * mv) * p
+        return mv.astype(r.dtype)
+
+    def rescale_tv_dual(self, v: Array, ymb: Array, factor: float, wz: float) -> None:
+        """β ← factor·β for ``β = ∇v − ymb``."""
+        ymb *= factor
+        ymb += (1 - factor) * gradient(v, wz)
+
+    def gradient_minus(self, v: Array, p: Array, wz: float) -> None:
+        """``p ← ∇v − p``: ymb from β, and β from ymb."""
+        p *= -1
+        p += gradient(v, wz)
+
+    def w_norms(self, v: Array, w: Array, w_prev: Array, wmg: Array) -> tuple[float, ...]:
+        """Squared norms ``(‖v−w‖², ‖v‖², ‖w‖², ‖w−w_prev‖², ‖γ‖²)`` with γ = v − wmg."""
+        return tuple(self._sq(x) for x in (v - w, v, w, w - w_prev, v - wmg))
+
+    def tv_norms(self, v: Array, y: Array, y_prev: Array, ymb: Array, wz: float,
+                 rho: float) -> tuple[float, ...]:
+        """Squared ``(‖∇v − y/ρ‖², ‖∇v‖², ‖y/ρ‖², ‖∇ᵀ(y − y_prev)/ρ‖², ‖∇ᵀβ‖²)``."""
+        g = gradient(v, wz)
+        return (self._sq(g - y / rho), self._sq(g), self._sq(y / rho),
+                self._sq(gradient_adjoint((y - y_prev) / rho, wz)),
+                self._sq(gradient_adjoint(g - ymb, wz)))
+
+    def _sq(self, a: Array) -> float:
+        return float(self.xp.vdot(a.ravel(), a.ravel()).real)
+
+
+class CompiledSteps(ArraySteps):
+    """numba kernels, one pass per step, split over the backend's FFT thread count."""
+
+    def __init__(self, backend: Backend) -> None:
+        super().__init__(backend)
+        self.threads = backend.threads
+
+    def _split(self, kernel: Callable[..., None], n: int, *args: Any) -> None:
+        chunks = min(self.threads, n)
+        if chunks <= 1:
+            kernel(*args, 0, n)
+            return
+        bounds = np.linspace(0, n, chunks + 1).astype(int)
+        futures = [_pool().submit(kernel, *args, int(lo), int(hi))
+                   for lo, hi in pairwise(bounds)]
+        for f in futures:
+            f.result()
+
+    def tv_dual_step(self, v: Array, ymb: Array, y_out: Array | None, kappa: float, rho: float,
+                     wz: float) -> None:
+        k = _kernels()
+        save = y_out is not None
+        self._split(k.tv_dual, v.shape[0], v, ymb, y_out if save else _DUMMY4, save,
+                    np.float32(kappa), np.float32(rho), np.float32(wz))
+
+    def w_step(self, v: Array, wmg: Array, rhs: Array | None, ymb: Array | None,
+               w_out: Array | None, thresh: float, rho: float, mu2: float, mu3: float,
+               wz: float, support_yx: tuple[int, int]) -> None:
+        k = _kernels()
+        use_tv = rhs is not None and ymb is not None
+        self._split(k.w_update, v.shape[0], v, wmg, rhs if use_tv else _DUMMY3,
+                    ymb if use_tv else _DUMMY4, use_tv,
+                    w_out if w_out is not None else _DUMMY3, w_out is not None,
+                    np.float32(thresh), np.float32(rho), np.float32(mu2), np.float32(mu3),
+                    np.float32(wz), support_yx[0], support_yx[1])
+
+    def volume_solve(self, r: Array, a: Array, xh: Array, lateral: Array | None, scale: float,
+                     mu1: float, mu2: float, mu3: float, e: float) -> Array:
+        k = _kernels()
+        mv = np.empty(r.shape[1:], dtype=r.dtype)
+        lat = lateral if lateral is not None else np.zeros((1, 1), dtype=np.float32)
+        f32 = np.float32
+        self._split(k.volume_solve, r.shape[1], _real_view(r), _real_view(a), _real_view(xh),
+                    lat, lateral is not None, f32(scale), f32(mu1), f32(mu2), f32(mu3), f32(e),
+                    _real_view(mv))
+        return mv
+
+    def rescale_tv_dual(self, v: Array, ymb: Array, factor: float, wz: float) -> None:
+        self._split(_kernels().rescale_tv_dual, v.shape[0], v, ymb, np.float32(factor),
+                    np.float32(wz))
+
+    def gradient_minus(self, v: Array, p: Array, wz: float) -> None:
+        self._split(_kernels().gradient_minus, v.shape[0], v, p, np.float32(wz))
+
+    def w_norms(self, v: Array, w: Array, w_prev: Array, wmg: Array) -> tuple[float, ...]:
+        partial = np.zeros((v.shape[0], 5))
+        self._split(_kernels().w_norms, v.shape[0], v, w, w_prev, wmg, partial)
+        return tuple(float(s) for s in partial.sum(axis=0))
+
+    def tv_norms(self, v: Array, y: Array, y_prev: Array, ymb: Array, wz: float,
+                 rho: float) -> tuple[float, ...]:
+        partial = np.zeros((v.shape[0], 5))
+        self._split(_kernels().tv_norms, v.shape[0], v, y, y_prev, ymb, np.float32(wz),
+                    np.float32(1.0 / rho), partial)
+        return tuple(float(s) for s in partial.sum(axis=0))
+
+
+def _real_view(a: Array) -> Array:
+    """A C-contiguous complex64 array as float32 with (re, im) pairs along the last axis."""
+    if a.dtype != np.complex64 or not a.flags.c_contiguous:
+        raise ValueError("the compiled volume solve needs C-contiguous complex64 spectra")
+    return a.view(np.float32)
+
+
+_DUMMY3 = np.zeros((1, 1, 1), dtype=np.float32)
+_DUMMY4 = np.zeros((1, 1, 1, 1), dtype=np.float32)
+_POOL: list[ThreadPoolExecutor] = []
+
+
+def _pool() -> ThreadPoolExecutor:
+    if not _POOL:
+        from volrecon.backend import available_cores
+
+        _POOL.append(ThreadPoolExecutor(max_workers=available_cores(),
+                                        thread_name_prefix="volrecon-admm"))
+    return _POOL[0]
+
+
+def _kernels() -> Any:
+    """The numba module, imported (and compiled, or loaded from its cache) on first use."""
+    from volrecon.solvers import admm_kernels
+
+    return admm_kernels

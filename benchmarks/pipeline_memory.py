@@ -24,14 +24,15 @@ from pathlib import Path
 import numpy as np
 
 _CHILD = r"""
-import json, resource, sys, time
+import json, sys, time
+from volrecon.bench.memory import process_peak_rss_bytes
 from volrecon.pipeline import load_job, run_job
 job = load_job(sys.argv[1]).with_compute(workers=int(sys.argv[2]))
 events = []
 result = run_job(job, progress=events.append)
 print(json.dumps({"frames": result.total, "seconds": result.seconds,
                   "frames_per_second": events[-1].frames_per_second,  # compute time only
-                  "peak_rss_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}))
+                  "peak_rss_mib": process_peak_rss_bytes() / 2**20}))
 """
 
 

@@ -21,27 +21,18 @@ Runner = Callable[[argparse.Namespace], int]
 
 
 def _add_bench(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
-    p = sub.add_parser("bench", help="time the solvers against the FFT lower bound")
-    p.add_argument("--size", type=int, nargs=3, action="append", metavar=("Z", "Y", "X"),
-                   help="problem size (repeatable); default 16 128 128")
-    p.add_argument("--device", choices=("cpu", "gpu"), default="cpu")
-    p.add_argument("--threads", type=int, default=None, help="FFT threads (default: all cores)")
-    p.add_argument("--json", action="store_true", help="print the figures as JSON")
+    from volrecon.bench import add_arguments
+
+    p = sub.add_parser("bench", help="time the solvers against the FFT lower bound, "
+                                     "general-purpose solvers, warm starts and memory")
+    add_arguments(p)
     p.set_defaults(run=_run_bench)
 
 
 def _run_bench(args: argparse.Namespace) -> int:
-    from volrecon.bench import main as bench_main
+    from volrecon.bench import run
 
-    argv = []
-    for size in args.size or []:
-        argv += ["--size", *map(str, size)]
-    argv += ["--device", args.device]
-    if args.threads:
-        argv += ["--threads", str(args.threads)]
-    if args.json:
-        argv.append("--json")
-    return bench_main(argv)
+    return run(args)
 
 
 def _add_calibrate(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]

@@ -47,11 +47,14 @@ def test_tv_dual_step(rng, steps):
 @pytest.mark.parametrize("use_tv", [True, False])
 def test_w_step(rng, steps, use_tv):
     v, wmg, ymb = _random(rng, (5, 12, 10)), _random(rng, (5, 12, 10)), _random(rng, (3, 5, 12, 10))
+    previous = _random(rng, (5, 12, 10))
     out = []
     for s in steps:
-        m, w, rhs = wmg.copy(), np.empty_like(v), np.empty_like(v)
-        s.w_step(v, m, rhs if use_tv else None, ymb if use_tv else None, w, 0.3, 1.8, 2.0, 3.0,
-                 0.5, (7, 6))
+        m, w, rhs = wmg.copy(), previous.copy(), np.empty_like(v)
+        change = s.w_step(v, m, rhs if use_tv else None, ymb if use_tv else None, w, 0.3, 1.8,
+                          2.0, 3.0, 0.5, (7, 6), compare=True)
+        # Definition: the change is ‖w − previous w‖², taken before the buffer is overwritten.
+        np.testing.assert_allclose(change, float(((w - previous) ** 2).sum()), rtol=1e-5)
         out.append((m, w, rhs))
     for got, want in zip(out[1][: 3 if use_tv else 2], out[0], strict=False):
         np.testing.assert_allclose(got, want, atol=1e-5)
@@ -66,23 +69,23 @@ def test_w_step(rng, steps, use_tv):
 @pytest.mark.parametrize("tv", [True, False])
 def test_volume_solve_matches_dense_solve(rng, steps, tv):
     nz, py, nf = 6, 8, 5
-    r, a, xh = _complex(rng, (nz, py, nf)), _complex(rng, (nz, py, nf)), _complex(rng, (py, nf))
+    r, h, xh = _complex(rng, (nz, py, nf)), _complex(rng, (nz, py, nf)), _complex(rng, (py, nf))
     lateral = (4 * rng.random((py, nf))).astype(F32)
     scale, mu1, mu2, mu3 = (1.0, 1.5, 0.7, 0.9) if tv else (3.0, 1.5, 0.0, 0.9)
     e = 0.3 if tv else 0.0
     results = []
     for s in steps:
         rr = r.copy()
-        mv = s.volume_solve(rr, a, xh, lateral if tv else None, scale, mu1, mu2, mu3, e)
+        mv = s.volume_solve(rr, h, xh, lateral if tv else None, scale, mu1, mu2, mu3, e)
         results.append((rr, mv))
     np.testing.assert_allclose(results[1][0], results[0][0], atol=1e-5)
     # Reference: numpy.linalg.solve of the dense system (μ₁ a aᴴ + T) ṽ = scale·r + a·x̂ with
-    # T = (μ₂L + μ₃)I + e·N, N the Neumann second difference, at every frequency.
+    # T = (μ₂L + μ₃)I + e·N, N the Neumann second difference, a = conj(Ĥ), at every frequency.
     neumann = (np.diag([1.0] + [2.0] * (nz - 2) + [1.0]) - np.eye(nz, k=1) - np.eye(nz, k=-1))
     for i in range(py):
         for j in range(nf):
             base = mu2 * lateral[i, j] + mu3 if tv else mu3
-            av = a[:, i, j].astype(complex)
+            av = h[:, i, j].astype(complex).conj()
             matrix = base * np.eye(nz) + e * neumann + mu1 * np.outer(av, av.conj())
             want = np.linalg.solve(matrix, scale * r[:, i, j] + av * xh[i, j])
             np.testing.assert_allclose(results[1][0][:, i, j], want, rtol=1e-4, atol=1e-5)
@@ -91,11 +94,10 @@ def test_volume_solve_matches_dense_solve(rng, steps, tv):
 
 
 def test_norms_and_rescale(rng, steps):
-    v, w, wp, wmg = (_random(rng, (4, 9, 11)) for _ in range(4))
+    v, w, wmg = (_random(rng, (4, 9, 11)) for _ in range(3))
     y, yp, ymb = (_random(rng, (3, 4, 9, 11)) for _ in range(3))
     array, compiled = steps
-    np.testing.assert_allclose(compiled.w_norms(v, w, wp, wmg), array.w_norms(v, w, wp, wmg),
-                               rtol=1e-5)
+    np.testing.assert_allclose(compiled.w_norms(v, w, wmg), array.w_norms(v, w, wmg), rtol=1e-5)
     np.testing.assert_allclose(compiled.tv_norms(v, y, yp, ymb, 0.5, 1.8),
                                array.tv_norms(v, y, yp, ymb, 0.5, 1.8), rtol=1e-5)
     m1, m2 = ymb.copy(), ymb.copy()

@@ -14,24 +14,48 @@ import sys
 from collections.abc import Sequence
 from typing import Any
 
-__all__ = ["main"]
+__all__ = ["add_arguments", "main", "run"]
+
+#: (tv, l1) of the warm-start figure, in units of the demo frame's peak (see warm_start.run).
+WARM_START_CASES = ((0.05, 0.0), (0.0, 0.3))
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    """The options of ``volrecon bench`` (shared by the CLI and ``python -m volrecon.bench``)."""
+    parser.add_argument("--size", type=int, nargs=3, action="append", metavar=("Z", "Y", "X"),
+                        help="problem size (repeatable); default 16 128 128")
+    parser.add_argument("--device", choices=("cpu", "gpu"), default="cpu")
+    parser.add_argument("--threads", type=int, default=None,
+                        help="FFT threads (default: all cores)")
+    parser.add_argument("--general", action="store_true",
+                        help="also time PyLops + PyProximal on the same problem")
+    parser.add_argument("--warm-start", action="store_true",
+                        help="also count ADMM iterations to tol, warm vs cold, on demo frames")
+    parser.add_argument("--memory", action="store_true",
+                        help="also measure peak memory at Z=64 on a 1024² sensor and per "
+                             "low-rank rank (fresh processes; needs ~10 GB free)")
+    parser.add_argument("--all", action="store_true",
+                        help="every figure: the sizes of the README table and all of the above")
+    parser.add_argument("--json", action="store_true", help="print the figures as JSON")
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    """Run the benchmarks and print a table (or JSON with ``--json``)."""
+    """Parse `argv` and run the benchmarks."""
+    parser = argparse.ArgumentParser(prog="volrecon bench", description=__doc__)
+    add_arguments(parser)
+    return run(parser.parse_args(argv))
+
+
+def run(args: argparse.Namespace) -> int:
+    """Run the benchmarks chosen in `args` and print a table (or JSON with ``--json``)."""
     from volrecon.backend import get_backend
     from volrecon.bench import iteration
 
-    parser = argparse.ArgumentParser(prog="volrecon bench", description=__doc__)
-    parser.add_argument("--size", type=int, nargs=3, action="append", metavar=("Z", "Y", "X"))
-    parser.add_argument("--device", choices=("cpu", "gpu"), default="cpu")
-    parser.add_argument("--threads", type=int, default=None)
-    parser.add_argument("--general", action="store_true",
-                        help="also time PyLops + PyProximal on the same problem (needs both)")
-    parser.add_argument("--json", action="store_true")
-    args = parser.parse_args(argv)
+    if args.all:
+        args.general = args.warm_start = args.memory = True
+    default = [(16, 128, 128), (32, 512, 512)] if args.all else [(16, 128, 128)]
     sizes: list[tuple[int, int, int]] = (
-        [(int(z), int(y), int(x)) for z, y, x in args.size] if args.size else [(16, 128, 128)])
+        [(int(z), int(y), int(x)) for z, y, x in args.size] if args.size else default)
     get_backend(args.device, threads=args.threads)  # fail early with a clear message
     report: dict[str, Any] = {"iteration": iteration.run(sizes, device=args.device,
                                                          threads=args.threads)}
@@ -42,6 +66,15 @@ def main(argv: Sequence[str] | None = None) -> int:
         level = float(frame.max())
         report["general"] = [general.compare(frame, model, tv=0.0, l1=1e-3 * level),
                              general.compare(frame, model, tv=1e-3 * level, l1=0.0)]
+    if args.warm_start:
+        from volrecon.bench import warm_start
+
+        report["warm_start"] = [warm_start.run(tv=tv, l1=l1, threads=args.threads)
+                                for tv, l1 in WARM_START_CASES]
+    if args.memory:
+        from volrecon.bench import memory
+
+        report["memory"] = memory.run()
     if args.json:
         json.dump(report, sys.stdout, indent=1)
         sys.stdout.write("\n")
@@ -60,4 +93,18 @@ def main(argv: Sequence[str] | None = None) -> int:
               f"{fastest[1]['seconds']:.2f} s ({fastest[1]['iterations']} it), PyProximal "
               f"{r['pyproximal_seconds'] or float('nan'):.2f} s "
               f"({r['pyproximal_iterations']} it): {r['speedup']:.1f}x")
+    for r in report.get("warm_start", []):
+        print(f"warm start, admm tol={r['tol']:.0e} tv={r['tv']:g} l1={r['l1']:g} on "
+              f"{len(r['cold_iterations'])} demo frames: cold {r['cold_iterations']} vs warm "
+              f"{r['warm_iterations']} iterations: {r['ratio_cold_to_warm']:.2f}x fewer")
+    if "memory" in report:
+        m = report["memory"]
+        gib = 2.0**30
+        z, y, x = m["size_zyx"]
+        print(f"peak RSS at {z}x{y}x{x}: " + ", ".join(
+            f"{k} {v / gib:.2f} GiB" for k, v in m["peak_rss_bytes"].items()))
+        z, y, x = m["low_rank_size_zyx"]
+        print(f"peak RSS at {z}x{y}x{x} (fista) by rank: " + ", ".join(
+            f"r={k} {v / gib:.2f} GiB" for k, v in m["low_rank_peak_rss_bytes"].items())
+            + f", full {m['full_rank_peak_rss_bytes'] / gib:.2f} GiB")
     return 0

@@ -2,7 +2,7 @@
 
 The child builds a model of the given size (random PSF planes: memory does not depend on their
 content), reconstructs one frame with a few iterations and reports its own peak resident set
-size (``getrusage`` ``ru_maxrss``). Low-rank depth models of rank r are measured the same way,
+size (``VmHWM``). Low-rank depth models of rank r are measured the same way,
 to show their memory growing with r rather than with Z.
 """
 
@@ -13,12 +13,13 @@ import subprocess
 import sys
 from typing import Any
 
-__all__ = ["peak_rss_bytes", "run"]
+__all__ = ["peak_rss_bytes", "process_peak_rss_bytes", "run"]
 
 _CHILD = r"""
-import json, resource, sys
+import json, sys
 import numpy as np
 from volrecon.models import Geometry, LowRankDepthPSF, PSFModel
+from volrecon.bench.memory import process_peak_rss_bytes
 from volrecon.solvers import reconstruct
 nz, ny, nx, method, rank, iterations = json.loads(sys.argv[1])
 rng = np.random.default_rng(0)
@@ -29,9 +30,29 @@ if rank:
 else:
     model = PSFModel.from_stack(rng.random((nz, ny, nx), dtype=np.float32), 2.0, 1.0)
 frame = rng.random((ny, nx), dtype=np.float32)
-reconstruct(frame, model, method=method, iterations=iterations, l1=1e-3, tol=0.0)
-print(json.dumps(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024))
+tv = 1e-3 if method.endswith("+tv") else 0.0
+reconstruct(frame, model, method=method.removesuffix("+tv"), iterations=iterations,
+            l1=0.0 if tv else 1e-3, tv=tv, tol=0.0)
+print(json.dumps(process_peak_rss_bytes()))
 """
+
+
+def process_peak_rss_bytes() -> int:
+    """Peak resident memory of this process image (``VmHWM``), in bytes.
+
+    Not ``getrusage().ru_maxrss``: on Linux that also keeps the peak of the forked copy of the
+    parent before ``exec``, so a child of a large process reports the parent's size.
+    """
+    try:
+        with open("/proc/self/status") as status:
+            for line in status:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:  # pragma: no cover - not Linux
+        pass
+    import resource
+
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
 
 
 def peak_rss_bytes(nz: int, ny: int, nx: int, method: str, *, rank: int = 0,

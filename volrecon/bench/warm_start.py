@@ -36,8 +36,10 @@ def _demo_frames(directory: Path, n_frames: int) -> tuple[np.ndarray, PSFModel]:
 
 
 def run(*, n_frames: int = 6, method: str = "admm", tol: float = 1e-3, tv: float = 0.0,
-        threads: int | None = None, max_iterations: int = 2000) -> dict[str, Any]:
-    """Iterations to `tol`, cold and warm, on `n_frames` consecutive demo frames."""
+        l1: float = 0.0, threads: int | None = None, max_iterations: int = 2000,
+        ) -> dict[str, Any]:
+    """Iterations to `tol`, cold and warm, on `n_frames` consecutive demo frames
+    (`tv`, `l1` in the units of the dark-subtracted frames and the calibrated model)."""
     with tempfile.TemporaryDirectory() as tmp:
         frames, model = _demo_frames(Path(tmp), n_frames)
     model = model.on_device("cpu", threads=threads)
@@ -45,12 +47,13 @@ def run(*, n_frames: int = 6, method: str = "admm", tol: float = 1e-3, tv: float
     state = None
     for frame in frames:
         _, info_cold = reconstruct(frame, model, method=method, iterations=max_iterations,
-                                   tol=tol, tv=tv, return_info=True)
+                                   tol=tol, tv=tv, l1=l1, return_info=True)
         _, info_warm = reconstruct(frame, model, method=method, iterations=max_iterations,
-                                   tol=tol, tv=tv, init=state, return_info=True)
+                                   tol=tol, tv=tv, l1=l1, init=state,
+                                   return_info=True)
         state = info_warm.state
         cold.append(info_cold.iterations)
         warm.append(info_warm.iterations)
     ratio = float(np.mean(cold[1:]) / np.mean(warm[1:]))
-    return {"method": method, "tol": tol, "tv": tv, "cold_iterations": cold,
+    return {"method": method, "tol": tol, "tv": tv, "l1": l1, "cold_iterations": cold,
             "warm_iterations": warm, "ratio_cold_to_warm": ratio}

@@ -81,7 +81,7 @@ class _Problem:
         spectra = model.transfer_functions()
         if spectra is None:
             raise ValueError("ADMM needs a model with transfer functions")
-        self.a = xp.ascontiguousarray(spectra.conj())  # a = conj(Ĥ) per frequency
+        self.h = spectra  # Ĥ, used as given (a = conj(Ĥ) is formed inside the steps)
         # Σ_z |Ĥ_z(f)|² weighted for the half spectrum: ‖Mᵀx‖² = Σ_f wgt·S(f)|X̂|² / (Py Px)
         py, px = self.shape
         fx = px // 2 + 1
@@ -90,7 +90,9 @@ class _Problem:
         if px % 2 == 0:
             half[-1] = 1.0
         self.half_weight = xp.asarray((half / (py * px)).astype(self.dtype))
-        self.sum_abs2 = (self.a.real**2 + self.a.imag**2).sum(axis=0).astype(self.dtype)
+        self.sum_abs2 = xp.zeros(spectra.shape[1:], dtype=self.dtype)
+        for plane in spectra:  # one plane at a time: no Z-sized temporaries
+            self.sum_abs2 += plane.real**2 + plane.imag**2
         self.lateral: Any = None
         if self.use_tv:
             ky = np.fft.fftfreq(py)[:, None]
@@ -105,6 +107,15 @@ class _Problem:
         """‖Mᵀx‖ from the half spectrum of x, by Parseval."""
         energy = (self.half_weight * self.sum_abs2 * (x_hat.real**2 + x_hat.imag**2)).sum()
         return math.sqrt(max(float(energy), 0.0))
+
+
+def _forward_padded(p: _Problem, v: Array, planes: int = 8) -> Array:
+    """M v on the padded grid, a few planes at a time (no Z-sized spectra)."""
+    be = p.be
+    mv_hat = p.xp.zeros(p.h.shape[1:], dtype=p.h.dtype)
+    for z0 in range(0, p.nz, planes):
+        mv_hat += (be.rfft2(v[z0 : z0 + planes], p.shape) * p.h[z0 : z0 + planes]).sum(axis=0)
+    return be.irfft2(mv_hat, p.shape).astype(p.dtype, copy=False)
 
 
 def _norm(xp: Any, a: Array) -> float:
@@ -153,12 +164,10 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
         steps.gradient_minus(v, ymb, wz)
     del gamma, beta
 
-    v_hat = be.rfft2(v, shape)
-    mv = be.irfft2((v_hat * p.a.conj()).sum(axis=0), shape).astype(dt, copy=False)
-    del v_hat
+    mv = _forward_padded(p, v) if init is not None else xp.zeros(shape, dtype=dt)
     rhs: Any = xp.empty_like(v) if p.use_tv else None
     # w (and ρ·y) of the iteration before a check and of the check itself
-    w_saved = [xp.zeros_like(v), xp.zeros_like(v)]
+    w = xp.zeros_like(v)  # w of the iteration before a check, then of the check itself
     y_saved: list[Any] = [xp.zeros_like(ymb), xp.zeros_like(ymb)] if p.use_tv else [None, None]
     x_denominator = xp.full(shape, 1.0 / mu[0], dtype=dt)
     x_denominator[sensor] = 1.0 / (1.0 + mu[0])
@@ -186,8 +195,8 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
             steps.tv_dual_step(v, ymb, None if slot is None else y_saved[slot], tv / mu[1],
                                rho, wz)
         # w-update and the spatial right-hand side μ₃(ŵ − γ) + μ₂∇ᵀ(ŷ − β)
-        steps.w_step(v, wmg, rhs, ymb, None if slot is None else w_saved[slot], l1 / mu[2],
-                     rho, mu[1], mu[2], wz, (ny, nx))
+        w_change = steps.w_step(v, wmg, rhs, ymb, None if slot is None else w, l1 / mu[2],
+                                rho, mu[1], mu[2], wz, (ny, nx), compare=check)
         # relaxed x̂ = ρx + (1 − ρ)Mv, minus α
         xp.multiply(mv, 1 - rho, out=x_minus_alpha)
         x_minus_alpha += rho * x
@@ -196,8 +205,9 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
         r_hat = be.rfft2(rhs if p.use_tv else wmg, shape)
         x_hat = be.rfft2(x_minus_alpha, shape)
         x_hat *= mu[0]
-        mv_hat = steps.volume_solve(r_hat, p.a, x_hat, p.lateral, 1.0 if p.use_tv else mu[2],
+        mv_hat = steps.volume_solve(r_hat, p.h, x_hat, p.lateral, 1.0 if p.use_tv else mu[2],
                                     mu[0], mu[1], mu[2], mu[1] * wz * wz)
+        v = None  # released before the inverse transform allocates the new volume
         v = be.irfft2(r_hat, shape, overwrite=True).astype(dt, copy=False)
         del r_hat
         mv = be.irfft2(mv_hat, shape).astype(dt, copy=False)
@@ -205,12 +215,11 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
         if not check:
             continue
         # residuals, normalised (Wohlberg 2017 §II); y is stored as ρ·y
-        w, w_prev = w_saved[it % 2], w_saved[(it - 1) % 2]
-        vw, vv, ww, dw, gg = steps.w_norms(v, w, w_prev, wmg)
+        vw, vv, ww, gg = steps.w_norms(v, w, wmg)
         r1 = _norm(xp, mv - x)
         s1 = mu[0] * p.norm_mt(be.rfft2(x - x_old, shape))
         rs = [r1, math.sqrt(vw)]
-        ss = [s1, mu[2] * math.sqrt(dw)]
+        ss = [s1, mu[2] * math.sqrt(w_change)]
         primal_ref = [max(_norm(xp, mv), _norm(xp, x)), math.sqrt(max(vv, ww))]
         dual_ref = [mu[0] * p.norm_mt(be.rfft2(alpha, shape)), mu[2] * math.sqrt(gg)]
         if p.use_tv:
@@ -258,11 +267,12 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
             x_denominator[...] = 1.0 / mu[0]
             x_denominator[sensor] = 1.0 / (1.0 + mu[0])
 
-    arrays = {"v": v, "alpha": alpha, "gamma": v - wmg}
+    xp.subtract(v, wmg, out=wmg)  # wmg is not needed any more: it becomes γ
+    arrays = {"v": v, "alpha": alpha, "gamma": wmg}
     if p.use_tv:
         steps.gradient_minus(v, ymb, wz)  # ymb is not needed any more: it becomes β
         arrays["beta"] = ymb
     state = SolverState("admm", arrays, tuple(mu))
     # The returned volume is the feasible split w (≥ 0, zero off the field).
-    volume = xp.ascontiguousarray(w_saved[it % 2][:, :ny, :nx])
+    volume = xp.ascontiguousarray(w[:, :ny, :nx])
     return volume, it, converged, state, history

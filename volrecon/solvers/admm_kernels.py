@@ -95,8 +95,8 @@ def _adjoint_row(p, z, i, wz, out):
 
 
 @_jit
-def w_update(v, wmg, rhs, ymb, use_tv, w_out, save, thresh, rho, mu2, mu3, wz,
-             sy, sx, lo, hi):
+def w_update(v, wmg, rhs, ymb, use_tv, w_out, save, compare, change, thresh, rho, mu2, mu3,
+             wz, sy, sx, lo, hi):
     _, ny, nx = v.shape
     div = np.empty(nx, np.float32)
     w = np.zeros(nx, np.float32)
@@ -113,6 +113,11 @@ def w_update(v, wmg, rhs, ymb, use_tv, w_out, save, thresh, rho, mu2, mu3, wz,
                 mr[j] = keep * vr[j] - (vr[j] - mr[j]) + rho * w[j]
             if save:
                 wo = w_out[z, i]
+                if compare:  # Σ(w − previous w)², then overwrite
+                    s = _ZERO
+                    for j in range(nx):
+                        s += (w[j] - wo[j]) * (w[j] - wo[j])
+                    change[z] += s
                 for j in range(nx):
                     wo[j] = w[j]
             if use_tv:
@@ -123,9 +128,10 @@ def w_update(v, wmg, rhs, ymb, use_tv, w_out, save, thresh, rho, mu2, mu3, wz,
 
 
 @_jit
-def volume_solve(r, a, xh, lateral, use_lateral, scale, mu1, mu2, mu3, e, mv,
+def volume_solve(r, h, xh, lateral, use_lateral, scale, mu1, mu2, mu3, e, mv,
                  lo, hi):
-    """r, a: (Z, Py, 2F) and xh, mv: (Py, 2F) float32 views of complex64 spectra."""
+    """r, h: (Z, Py, 2F) and xh, mv: (Py, 2F) float32 views of complex64 spectra; the
+    system's a is conj(h)."""
     nz, _, nf2 = r.shape
     nf = nf2 // 2
     cp = np.empty((nz, nf), np.float32)
@@ -144,7 +150,7 @@ def volume_solve(r, a, xh, lateral, use_lateral, scale, mu1, mu2, mu3, e, mv,
         # Thomas forward sweep for T u = scale·r + a·x̂ and T p = a, T = base + e·N
         for k in range(nz):
             nk = _ZERO if nz == 1 else (_ONE if k == 0 or k == nz - 1 else _TWO)
-            rk, ak = r[k, i], a[k, i]
+            rk, hk = r[k, i], h[k, i]
             km = max(k - 1, 0)
             carry = e if k > 0 else _ZERO
             if k == 0:  # nothing carried into the first plane (and cp, u, p unset there)
@@ -154,7 +160,7 @@ def volume_solve(r, a, xh, lateral, use_lateral, scale, mu1, mu2, mu3, e, mv,
                 pr[0, :] = _ZERO
                 pi[0, :] = _ZERO
             for j in range(nf):
-                are, aim = ak[2 * j], ak[2 * j + 1]
+                are, aim = hk[2 * j], -hk[2 * j + 1]
                 xre, xim = xr_row[2 * j], xr_row[2 * j + 1]
                 inv = _ONE / (base[j] + e * nk + carry * cp[km, j])
                 ur[k, j] = (scale * rk[2 * j] + are * xre - aim * xim + carry * ur[km, j]) * inv
@@ -175,9 +181,9 @@ def volume_solve(r, a, xh, lateral, use_lateral, scale, mu1, mu2, mu3, e, mv,
         si[:] = _ZERO
         q[:] = _ZERO
         for k in range(nz):
-            ak = a[k, i]
+            hk = h[k, i]
             for j in range(nf):
-                are, aim = ak[2 * j], ak[2 * j + 1]
+                are, aim = hk[2 * j], -hk[2 * j + 1]
                 sr[j] += are * ur[k, j] + aim * ui[k, j]
                 si[j] += are * ui[k, j] - aim * ur[k, j]
                 q[j] += are * pr[k, j] + aim * pi[k, j]
@@ -210,27 +216,24 @@ def rescale_tv_dual(v, ymb, factor, wz, lo, hi):
 
 
 @_jit_sum
-def w_norms(v, w, w_prev, wmg, partial, lo, hi):
+def w_norms(v, w, wmg, partial, lo, hi):
     _, ny, nx = v.shape
     for z in range(lo, hi):
-        acc = np.zeros(5)
+        acc = np.zeros(4)
         for i in range(ny):
-            s0 = s1 = s2 = s3 = s4 = _ZERO
-            vr, wr, pr, mr = v[z, i], w[z, i], w_prev[z, i], wmg[z, i]
+            s0 = s1 = s2 = s3 = _ZERO
+            vr, wr, mr = v[z, i], w[z, i], wmg[z, i]
             for j in range(nx):
                 c, b = vr[j], wr[j]
                 g = c - mr[j]
-                d = b - pr[j]
                 s0 += (c - b) * (c - b)
                 s1 += c * c
                 s2 += b * b
-                s3 += d * d
-                s4 += g * g
+                s3 += g * g
             acc[0] += s0
             acc[1] += s1
             acc[2] += s2
             acc[3] += s3
-            acc[4] += s4
         partial[z, :] = acc
 
 

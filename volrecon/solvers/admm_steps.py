@@ -67,9 +67,10 @@ class ArraySteps:
 
     def w_step(self, v: Array, wmg: Array, rhs: Array | None, ymb: Array | None,
                w_out: Array | None, thresh: float, rho: float, mu2: float, mu3: float,
-               wz: float, support_yx: tuple[int, int]) -> None:
+               wz: float, support_yx: tuple[int, int], *, compare: bool = False) -> float:
         """``w = Π_{support,≥0}(v + γ − thresh)``, ``wmg ← (1−ρ)v − γ + ρw``, and with TV
-        ``rhs = μ₃·wmg + μ₂∇ᵀymb``; w into `w_out`."""
+        ``rhs = μ₃·wmg + μ₂∇ᵀymb``; w into `w_out`. With `compare`, returns ``‖w − w_out‖²``
+        taken before `w_out` is overwritten (one buffer serves both iterates); else 0."""
         xp = self.xp
         ny, nx = support_yx
         gamma = v - wmg
@@ -81,18 +82,23 @@ class ArraySteps:
         wmg[...] = (1 - rho) * v - gamma + rho * w
         if rhs is not None and ymb is not None:
             rhs[...] = mu3 * wmg + mu2 * gradient_adjoint(ymb, wz)
+        change = 0.0
         if w_out is not None:
+            if compare:
+                change = self._sq(w - w_out)
             w_out[...] = w
+        return change
 
-    def volume_solve(self, r: Array, a: Array, xh: Array, lateral: Array | None, scale: float,
+    def volume_solve(self, r: Array, h: Array, xh: Array, lateral: Array | None, scale: float,
                      mu1: float, mu2: float, mu3: float, e: float) -> Array:
         """Solve ``(μ₁ a aᴴ + T) ṽ = scale·r + a·xh`` per lateral frequency, in place in `r`.
 
-        ``T = (μ₂L(f) + μ₃) I + e·N`` with N the Neumann depth Laplacian (tridiagonal, Thomas
-        algorithm) and ``a = conj(Ĥ)``; Sherman–Morrison handles the rank-one term. Returns
-        ``(M v)^ = aᴴṽ``.
+        ``a = conj(h)`` with `h` the model's transfer functions Ĥ, ``T = (μ₂L(f) + μ₃) I + e·N``
+        with N the Neumann depth Laplacian (tridiagonal, Thomas algorithm); Sherman–Morrison
+        handles the rank-one term. Returns ``(M v)^ = aᴴṽ``.
         """
         xp = self.xp
+        a = h.conj()
         nz = r.shape[0]
         base = mu3 if lateral is None else mu2 * lateral + mu3
         rhs = scale * r + a * xh
@@ -125,9 +131,9 @@ class ArraySteps:
         p *= -1
         p += gradient(v, wz)
 
-    def w_norms(self, v: Array, w: Array, w_prev: Array, wmg: Array) -> tuple[float, ...]:
-        """Squared norms ``(‖v−w‖², ‖v‖², ‖w‖², ‖w−w_prev‖², ‖γ‖²)`` with γ = v − wmg."""
-        return tuple(self._sq(x) for x in (v - w, v, w, w - w_prev, v - wmg))
+    def w_norms(self, v: Array, w: Array, wmg: Array) -> tuple[float, ...]:
+        """Squared norms ``(‖v−w‖², ‖v‖², ‖w‖², ‖γ‖²)`` with γ = v − wmg."""
+        return tuple(self._sq(x) for x in (v - w, v, w, v - wmg))
 
     def tv_norms(self, v: Array, y: Array, y_prev: Array, ymb: Array, wz: float,
                  rho: float) -> tuple[float, ...]:
@@ -168,22 +174,25 @@ class CompiledSteps(ArraySteps):
 
     def w_step(self, v: Array, wmg: Array, rhs: Array | None, ymb: Array | None,
                w_out: Array | None, thresh: float, rho: float, mu2: float, mu3: float,
-               wz: float, support_yx: tuple[int, int]) -> None:
+               wz: float, support_yx: tuple[int, int], *, compare: bool = False) -> float:
         k = _kernels()
         use_tv = rhs is not None and ymb is not None
+        partial = np.zeros(v.shape[0])
         self._split(k.w_update, v.shape[0], v, wmg, rhs if use_tv else _DUMMY3,
                     ymb if use_tv else _DUMMY4, use_tv,
                     w_out if w_out is not None else _DUMMY3, w_out is not None,
+                    compare and w_out is not None, partial,
                     np.float32(thresh), np.float32(rho), np.float32(mu2), np.float32(mu3),
                     np.float32(wz), support_yx[0], support_yx[1])
+        return float(partial.sum())
 
-    def volume_solve(self, r: Array, a: Array, xh: Array, lateral: Array | None, scale: float,
+    def volume_solve(self, r: Array, h: Array, xh: Array, lateral: Array | None, scale: float,
                      mu1: float, mu2: float, mu3: float, e: float) -> Array:
         k = _kernels()
         mv = np.empty(r.shape[1:], dtype=r.dtype)
         lat = lateral if lateral is not None else np.zeros((1, 1), dtype=np.float32)
         f32 = np.float32
-        self._split(k.volume_solve, r.shape[1], _real_view(r), _real_view(a), _real_view(xh),
+        self._split(k.volume_solve, r.shape[1], _real_view(r), _real_view(h), _real_view(xh),
                     lat, lateral is not None, f32(scale), f32(mu1), f32(mu2), f32(mu3), f32(e),
                     _real_view(mv))
         return mv
@@ -195,9 +204,9 @@ class CompiledSteps(ArraySteps):
     def gradient_minus(self, v: Array, p: Array, wz: float) -> None:
         self._split(_kernels().gradient_minus, v.shape[0], v, p, np.float32(wz))
 
-    def w_norms(self, v: Array, w: Array, w_prev: Array, wmg: Array) -> tuple[float, ...]:
-        partial = np.zeros((v.shape[0], 5))
-        self._split(_kernels().w_norms, v.shape[0], v, w, w_prev, wmg, partial)
+    def w_norms(self, v: Array, w: Array, wmg: Array) -> tuple[float, ...]:
+        partial = np.zeros((v.shape[0], 4))
+        self._split(_kernels().w_norms, v.shape[0], v, w, wmg, partial)
         return tuple(float(s) for s in partial.sum(axis=0))
 
     def tv_norms(self, v: Array, y: Array, y_prev: Array, ymb: Array, wz: float,

@@ -282,10 +282,14 @@ def tv_norms(v, y, y_prev, ymb, wz, inv_rho, partial, lo, hi):
                 b_below[:] = _ZERO
                 d_below[:] = _ZERO
             # ∇ᵀ of d and of β on this row (the stencil of _adjoint_row)
-            for j in range(nx):
-                jm = j - 1 if j > 0 else nx - 1
-                dd = d_up[j] - d[0, j] + d[1, jm] - d[1, j] + wz * (d_below[j] - top * d[2, j])
-                db = b_up[j] - b[0, j] + b[1, jm] - b[1, j] + wz * (b_below[j] - top * b[2, j])
+            d0, d1, d2, b0, b1, b2 = d[0], d[1], d[2], b[0], b[1], b[2]
+            dd = d_up[0] - d0[0] + d1[nx - 1] - d1[0] + wz * (d_below[0] - top * d2[0])
+            db = b_up[0] - b0[0] + b1[nx - 1] - b1[0] + wz * (b_below[0] - top * b2[0])
+            s3 += dd * dd
+            s4 += db * db
+            for j in range(1, nx):  # no wrap-around inside the loop: it vectorises
+                dd = d_up[j] - d0[j] + d1[j - 1] - d1[j] + wz * (d_below[j] - top * d2[j])
+                db = b_up[j] - b0[j] + b1[j - 1] - b1[j] + wz * (b_below[j] - top * b2[j])
                 s3 += dd * dd
                 s4 += db * db
             b_up[:] = b[0]

@@ -93,7 +93,7 @@ def test_volume_solve_matches_dense_solve(rng, steps, tv):
                                        atol=1e-5)
 
 
-def test_norms_and_rescale(rng, steps):
+def test_norms_and_gradient_minus(rng, steps):
     v, w, wmg = (_random(rng, (4, 9, 11)) for _ in range(3))
     y, yp, ymb = (_random(rng, (3, 4, 9, 11)) for _ in range(3))
     array, compiled = steps
@@ -101,8 +101,10 @@ def test_norms_and_rescale(rng, steps):
     np.testing.assert_allclose(compiled.tv_norms(v, y, yp, ymb, 0.5, 1.8),
                                array.tv_norms(v, y, yp, ymb, 0.5, 1.8), rtol=1e-5)
     m1, m2 = ymb.copy(), ymb.copy()
-    array.rescale_tv_dual(v, m1, 0.5, 0.5)
-    compiled.rescale_tv_dual(v, m2, 0.5, 0.5)
+    array.gradient_minus(v, m1, 0.5)
+    compiled.gradient_minus(v, m2, 0.5)
+    # Definition: p ← ∇v − p with the gradient of solvers.tv.
+    np.testing.assert_allclose(m2, gradient(v, 0.5) - ymb, atol=1e-6)
     np.testing.assert_allclose(m2, m1, atol=1e-6)
 
 

@@ -166,8 +166,9 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
 
     mv = _forward_padded(p, v) if init is not None else xp.zeros(shape, dtype=dt)
     rhs: Any = xp.empty_like(v) if p.use_tv else None
-    # w (and ρ·y) of the iteration before a check and of the check itself
-    w = xp.zeros_like(v)  # w of the iteration before a check, then of the check itself
+    # w of the iteration before a check, then of the check itself (one buffer: the w-step
+    # returns ‖w − w_prev‖² before overwriting); ρ·y of the same two iterations, by parity
+    w = xp.zeros_like(v)
     y_saved: list[Any] = [xp.zeros_like(ymb), xp.zeros_like(ymb)] if p.use_tv else [None, None]
     x_denominator = xp.full(shape, 1.0 / mu[0], dtype=dt)
     x_denominator[sensor] = 1.0 / (1.0 + mu[0])
@@ -261,8 +262,10 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
             elif k == 2:
                 wmg *= factor
                 wmg += (1 - factor) * v
-            else:
-                steps.rescale_tv_dual(v, ymb, factor, wz)
+            else:  # ymb → β, scale, → ymb
+                steps.gradient_minus(v, ymb, wz)
+                ymb *= factor
+                steps.gradient_minus(v, ymb, wz)
         if changed:
             x_denominator[...] = 1.0 / mu[0]
             x_denominator[sensor] = 1.0 / (1.0 + mu[0])

@@ -201,20 +201,6 @@ def volume_solve(r, h, xh, lateral, use_lateral, scale, mu1, mu2, mu3, e, mv,
                 rk[2 * j + 1] = ui[k, j] - mu1 * (sr[j] * pi[k, j] + si[j] * pr[k, j])
 
 
-@_jit
-def rescale_tv_dual(v, ymb, factor, wz, lo, hi):
-    _, ny, nx = v.shape
-    g = np.empty((3, nx), np.float32)
-    keep = _ONE - factor
-    for z in range(lo, hi):
-        for i in range(ny):
-            _gradient_rows(v, z, i, wz, g[0], g[1], g[2])
-            for c in range(3):
-                m = ymb[c, z, i]
-                for j in range(nx):
-                    m[j] = factor * m[j] + keep * g[c, j]
-
-
 @_jit_sum
 def w_norms(v, w, wmg, partial, lo, hi):
     _, ny, nx = v.shape

@@ -1,6 +1,6 @@
 """The element-wise and per-frequency steps of one ADMM iteration, fused.
 
-:mod:`volrecon.solvers.admm` is written in terms of five steps; this module gives each two
+:mod:`volrecon.solvers.admm` is written in terms of these steps; this module gives each two
 implementations with one contract:
 
 * compiled (numba, CPU): each step is one pass over its arrays, split over the backend's
@@ -121,11 +121,6 @@ class ArraySteps:
         r[...] = u - (mu1 * mv) * p
         return mv.astype(r.dtype)
 
-    def rescale_tv_dual(self, v: Array, ymb: Array, factor: float, wz: float) -> None:
-        """β ← factor·β for ``β = ∇v − ymb``."""
-        ymb *= factor
-        ymb += (1 - factor) * gradient(v, wz)
-
     def gradient_minus(self, v: Array, p: Array, wz: float) -> None:
         """``p ← ∇v − p``: ymb from β, and β from ymb."""
         p *= -1
@@ -196,10 +191,6 @@ class CompiledSteps(ArraySteps):
                     lat, lateral is not None, f32(scale), f32(mu1), f32(mu2), f32(mu3), f32(e),
                     _real_view(mv))
         return mv
-
-    def rescale_tv_dual(self, v: Array, ymb: Array, factor: float, wz: float) -> None:
-        self._split(_kernels().rescale_tv_dual, v.shape[0], v, ymb, np.float32(factor),
-                    np.float32(wz))
 
     def gradient_minus(self, v: Array, p: Array, wz: float) -> None:
         self._split(_kernels().gradient_minus, v.shape[0], v, p, np.float32(wz))

@@ -11,8 +11,9 @@ from scipy.signal import fftconvolve
 import volrecon
 from volrecon.errors import ConfigError, ShapeError
 from volrecon.io import FrameCorrection
-from volrecon.napari.preview import PreviewSettings, preview_frame, read_frame
+from volrecon.napari.preview import preview_frame, read_frame
 from volrecon.napari.sample import demo_sample, hydrogel_sample, sample_cache_folder
+from volrecon.solvers import SolverSettings
 
 
 @pytest.fixture
@@ -32,7 +33,7 @@ def test_preview_finds_the_bead_and_its_residual_is_b_minus_av(model):
     frame = _bead_frame(model) + 100.0
     dark = np.full(frame.shape, 100.0, np.float32)
     before = frame.copy()
-    result = preview_frame(frame, model, PreviewSettings(method="fista", iterations=60),
+    result = preview_frame(frame, model, SolverSettings(method="fista", iterations=60),
                            correction=FrameCorrection.build(dark_yx=dark))
     np.testing.assert_array_equal(frame, before)  # input untouched
     assert result.volume_zyx.shape == SHAPE_ZYX and result.volume_zyx.dtype == np.float32
@@ -53,7 +54,7 @@ def test_preview_bins_a_full_resolution_frame_like_the_job(model):
     # Each model pixel split into 2 × 2 camera pixels of the same value: binning by 2
     # (block mean) gives the frame back exactly.
     raw = np.repeat(np.repeat(frame, 2, axis=0), 2, axis=1)
-    settings = PreviewSettings(method="fista", iterations=30)
+    settings = SolverSettings(method="fista", iterations=30)
     binned = preview_frame(raw, model, settings, correction=FrameCorrection.build(binning=2))
     direct = preview_frame(frame, model, settings)
     np.testing.assert_allclose(binned.volume_zyx, direct.volume_zyx, rtol=1e-5, atol=1e-5)
@@ -69,19 +70,19 @@ def test_read_frame_from_a_tiff(tmp_path, rng):
 
 def test_preview_refuses_bad_input(model):
     with pytest.raises(ShapeError, match=r"frame has shape \(5, 5\).*model's sensor"):
-        preview_frame(np.ones((5, 5)), model, PreviewSettings())
+        preview_frame(np.ones((5, 5)), model, SolverSettings())
     with pytest.raises(ShapeError, match="but the dark/flat images"):
-        preview_frame(np.ones(SHAPE_ZYX[1:]), model, PreviewSettings(),
+        preview_frame(np.ones(SHAPE_ZYX[1:]), model, SolverSettings(),
                       correction=FrameCorrection.build(dark_yx=np.ones((2, 2))))
     with pytest.raises(ShapeError, match="must have 2 axes"):
-        preview_frame(np.ones(SHAPE_ZYX), model, PreviewSettings())
+        preview_frame(np.ones(SHAPE_ZYX), model, SolverSettings())
     with pytest.raises(ConfigError, match="method must be one of"):
-        PreviewSettings(method="magic")
-    with pytest.raises(ConfigError, match="iterations must be at least 1"):
-        PreviewSettings(iterations=0)
-    with pytest.raises(ConfigError, match="tv and l1 must be >= 0"):
-        PreviewSettings(tv=-1.0)
-    assert PreviewSettings(tv=0.01, l1=2.0).label() == "admm 50 it, tv 0.01, l1 2"
+        SolverSettings(method="magic")
+    with pytest.raises(ConfigError, match="iterations must be an integer of at least 1"):
+        SolverSettings(iterations=0)
+    with pytest.raises(ConfigError, match="tv must be a finite number >= 0"):
+        SolverSettings(tv=-1.0)
+    assert SolverSettings(iterations=50, tv=0.01, l1=2.0).label() == "admm 50 it, tv 0.01, l1 2"
 
 
 def test_hydrogel_sample_reconstructs_the_simulated_scene():

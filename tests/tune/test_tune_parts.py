@@ -13,13 +13,14 @@ from skimage.registration import phase_cross_correlation
 from volrecon import PSFModel
 from volrecon.errors import ConfigError, DataError, ShapeError
 from volrecon.pipeline.config import ComputeSettings
+from volrecon.solvers import SolverSettings
 from volrecon.tune.criteria import blurred_relative_change, choose_cell, stabilities
 from volrecon.tune.execute import run_calls
 from volrecon.tune.iterations import candidate_counts, chain_error
 from volrecon.tune.noise import FrameNoise, PhotonTransfer
 from volrecon.tune.reference import register_translation, registered_correlation
 from volrecon.tune.sites import Site, choose_site_frames
-from volrecon.tune.solve import SolverCall, solve_chain, solve_site
+from volrecon.tune.solve import solve_chain, solve_site
 from volrecon.tune.sweep import FINE_STEP, fine_grid, weight_unit
 
 
@@ -184,7 +185,7 @@ def test_sweep_calls_give_the_same_results_on_every_scheduler(rng: np.random.Gen
                                                               scheduler):
     model = _delta_model()
     frames = rng.random((3, 16, 16)).astype(np.float32)
-    call = SolverCall("admm", 0.0, 1.0, "cpu", 1)
+    call = SolverSettings(method="admm", tol=0.0)
     calls = [(frames, tv, 0.01, 10, call) for tv in (0.0, 0.05)]
     compute = ComputeSettings(scheduler=scheduler, workers=2)
     got = run_calls(solve_site, model, calls, compute)
@@ -203,7 +204,7 @@ def test_chain_warm_starts_from_the_previous_frame(rng: np.random.Generator):
 
     model = _delta_model()
     frames = rng.random((2, 16, 16)).astype(np.float32)
-    call = SolverCall("admm", 0.0, 1.0, "cpu", 1)
+    call = SolverSettings(method="admm", tol=0.0)
     chain = solve_chain(model, frames, 0.0, 0.01, 5, call)
     first, info = reconstruct(frames[0], model, iterations=5, l1=0.01, tol=0.0,
                               return_info=True)

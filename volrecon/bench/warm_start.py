@@ -15,7 +15,7 @@ from typing import Any
 import numpy as np
 
 from volrecon.models import PSFModel
-from volrecon.solvers import reconstruct
+from volrecon.solvers import FrameResult, SolverSettings, solve_chain, solve_frame
 
 __all__ = ["run"]
 
@@ -35,6 +35,12 @@ def _demo_frames(directory: Path, n_frames: int) -> tuple[np.ndarray, PSFModel]:
     return video - dark, PSFModel.load(directory / "model")
 
 
+def _iterations(result: FrameResult) -> int:
+    if result.info is None:
+        raise RuntimeError(f"warm-start benchmark: a demo frame failed ({result.failure})")
+    return result.info.iterations
+
+
 def run(*, n_frames: int = 6, method: str = "admm", tol: float = 1e-3, tv: float = 0.0,
         l1: float = 0.0, threads: int | None = None, max_iterations: int = 2000,
         ) -> dict[str, Any]:
@@ -43,17 +49,10 @@ def run(*, n_frames: int = 6, method: str = "admm", tol: float = 1e-3, tv: float
     with tempfile.TemporaryDirectory() as tmp:
         frames, model = _demo_frames(Path(tmp), n_frames)
     model = model.on_device("cpu", threads=threads)
-    cold, warm = [], []
-    state = None
-    for frame in frames:
-        _, info_cold = reconstruct(frame, model, method=method, iterations=max_iterations,
-                                   tol=tol, tv=tv, l1=l1, return_info=True)
-        _, info_warm = reconstruct(frame, model, method=method, iterations=max_iterations,
-                                   tol=tol, tv=tv, l1=l1, init=state,
-                                   return_info=True)
-        state = info_warm.state
-        cold.append(info_cold.iterations)
-        warm.append(info_warm.iterations)
+    settings = SolverSettings(method=method, iterations=max_iterations, tol=tol, tv=tv, l1=l1,
+                              warm_start_frames=len(frames))
+    cold = [_iterations(solve_frame(frame, model, settings)) for frame in frames]
+    warm = [_iterations(result) for result in solve_chain(frames, model, settings)]
     ratio = float(np.mean(cold[1:]) / np.mean(warm[1:]))
     return {"method": method, "tol": tol, "tv": tv, "l1": l1, "cold_iterations": cold,
             "warm_iterations": warm, "ratio_cold_to_warm": ratio}

@@ -8,52 +8,15 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from volrecon.errors import ConfigError, ShapeError
-from volrecon.solvers import reconstruct
-from volrecon.solvers.reconstruct import METHODS
+from volrecon.errors import DataError, ShapeError
+from volrecon.solvers import SolverSettings, solve_frame
 
 if TYPE_CHECKING:
     from volrecon.io.correct import FrameCorrection
     from volrecon.models.base import PSFModel
     from volrecon.solvers.info import SolveInfo
 
-__all__ = ["PreviewResult", "PreviewSettings", "preview_frame", "read_frame"]
-
-
-@dataclass(frozen=True)
-class PreviewSettings:
-    """Solver settings of one preview.
-
-    Attributes
-    ----------
-    method : {"admm", "fista", "rl"}
-    iterations : int
-        At least 1.
-    tv, l1 : float
-        Regularisation weights, >= 0.
-    """
-
-    method: str = "admm"
-    iterations: int = 50
-    tv: float = 0.0
-    l1: float = 0.0
-
-    def __post_init__(self) -> None:
-        if self.method not in METHODS:
-            raise ConfigError(f"method must be one of {', '.join(METHODS)}; got {self.method!r}")
-        if self.iterations < 1:
-            raise ConfigError(f"iterations must be at least 1; got {self.iterations}")
-        if not (self.tv >= 0 and self.l1 >= 0):
-            raise ConfigError(f"tv and l1 must be >= 0; got tv={self.tv}, l1={self.l1}")
-
-    def label(self) -> str:
-        """Short text naming the settings, e.g. ``"admm 50 it, tv 0.01"``."""
-        text = f"{self.method} {self.iterations} it"
-        if self.tv:
-            text += f", tv {self.tv:g}"
-        if self.l1:
-            text += f", l1 {self.l1:g}"
-        return text
+__all__ = ["PreviewResult", "preview_frame", "read_frame"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -68,14 +31,14 @@ class PreviewResult:
         ``b − A v``: the frame minus the model's image of the volume.
     info : SolveInfo
         Iterations, objective, relative residual, seconds.
-    settings : PreviewSettings
+    settings : SolverSettings
         The settings used.
     """
 
     volume_zyx: np.ndarray
     residual_yx: np.ndarray
     info: SolveInfo
-    settings: PreviewSettings
+    settings: SolverSettings
 
 
 def read_frame(path: str | os.PathLike[str], index: int = 0) -> np.ndarray:
@@ -95,7 +58,7 @@ def read_frame(path: str | os.PathLike[str], index: int = 0) -> np.ndarray:
     return frame
 
 
-def preview_frame(frame_yx: Any, model: PSFModel, settings: PreviewSettings, *,
+def preview_frame(frame_yx: Any, model: PSFModel, settings: SolverSettings, *,
                   correction: FrameCorrection | None = None, threads: int | None = None
                   ) -> PreviewResult:
     """Reconstruct one frame and its residual image.
@@ -106,8 +69,8 @@ def preview_frame(frame_yx: Any, model: PSFModel, settings: PreviewSettings, *,
         Camera frame. Not modified.
     model : PSFModel
         The PSF model.
-    settings : PreviewSettings
-        Solver settings.
+    settings : SolverSettings
+        Solver settings, as a job's ``[solver]`` section (the same solve a job runs).
     correction : FrameCorrection, optional
         Dark subtraction, flat field and binning applied first, as a job's ``[video]``
         settings do; the corrected frame must be on the model's sensor grid.
@@ -119,6 +82,9 @@ def preview_frame(frame_yx: Any, model: PSFModel, settings: PreviewSettings, *,
     ShapeError
         If the (corrected) frame is not on the model's sensor grid, or does not fit the
         correction's images or binning.
+    DataError
+        If the frame fails as a job's frame would (not finite, diverged, residual above
+        ``settings.max_residual``).
     """
     frame = np.array(frame_yx, dtype=np.float32)
     if frame.ndim != 2:
@@ -129,9 +95,12 @@ def preview_frame(frame_yx: Any, model: PSFModel, settings: PreviewSettings, *,
         raise ShapeError(f"frame has shape {frame.shape} (after correction) but the model's "
                          f"sensor is {tuple(model.shape_out)}; choose a frame from the model's "
                          "camera, or set the binning the model was calibrated with")
-    volume, info = reconstruct(frame, model, method=settings.method,
-                               iterations=settings.iterations, tv=settings.tv, l1=settings.l1,
-                               threads=threads, return_info=True)
-    volume = np.asarray(volume, dtype=np.float32)
+    if threads is not None:
+        model = model.on_device(model.backend.device, threads=threads)
+    result = solve_frame(frame, model, settings)
+    if result.volume is None or result.info is None:
+        raise DataError(f"the preview frame failed: {result.failure}; try other settings "
+                        "or another frame")
+    volume, info = result.volume, result.info
     residual = frame - np.asarray(model.forward(volume), dtype=np.float32)
     return PreviewResult(volume_zyx=volume, residual_yx=residual, info=info, settings=settings)

@@ -23,9 +23,9 @@ from magicgui.widgets.bases import Widget
 
 from volrecon.errors import ConfigError, ShapeError, VolreconError
 from volrecon.napari._widget_tools import BackgroundJob, chosen_path
-from volrecon.napari.preview import PreviewResult, PreviewSettings, preview_frame, read_frame
+from volrecon.napari.preview import PreviewResult, preview_frame, read_frame
 from volrecon.napari.stores import VOLUME_COLORMAP
-from volrecon.solvers.reconstruct import METHODS
+from volrecon.solvers import METHODS, SolverSettings
 
 if TYPE_CHECKING:
     import napari
@@ -42,7 +42,7 @@ class _Request:
     """Everything a preview needs, gathered on the GUI thread."""
 
     model_path: Path
-    settings: PreviewSettings
+    settings: SolverSettings
     frame_path: Path | None
     layer_data: Any
     layer_name: str
@@ -156,8 +156,8 @@ class PreviewWidget(Container[Widget]):
         except ValueError as exc:
             raise ConfigError(f"tv and l1 must be numbers; got {self._tv.value!r}, "
                               f"{self._l1.value!r}") from exc
-        settings = PreviewSettings(method=self._method.value, iterations=self._iterations.value,
-                                   tv=tv, l1=l1)
+        settings = SolverSettings(method=self._method.value, iterations=self._iterations.value,
+                                  tv=tv, l1=l1)
         source = self._source.value
         frame_path, data, name = None, None, ""
         if source == FROM_FILE:

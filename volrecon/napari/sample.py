@@ -70,8 +70,9 @@ def hydrogel_sample(*, n_frames: int = 12, n_planes: int = 12, iterations: int =
     """
     import tifffile
 
-    from volrecon import PSFModel, reconstruct
+    from volrecon import PSFModel
     from volrecon.simulate import write_hydrogel_scenario
+    from volrecon.solvers import SolverSettings, solve_chain
 
     with tempfile.TemporaryDirectory(prefix="volrecon-sample-") as folder:
         scenario = write_hydrogel_scenario(folder, rng=seed, n_frames=n_frames,
@@ -85,13 +86,12 @@ def hydrogel_sample(*, n_frames: int = 12, n_planes: int = 12, iterations: int =
     camera = scenario.camera
     # Counts -> photons: E[y] = offset + K (η μ_p + μ_d); the dark mean holds offset + K μ_d.
     counts_per_photon = camera.gain_adu_per_electron * camera.quantum_efficiency
-    volumes = np.empty((n_frames, *model.shape_in), dtype=np.float32)
-    state = None
-    for t in range(n_frames):
-        photons = ((video[t] - dark) / counts_per_photon).astype(np.float32)
-        volumes[t], info = reconstruct(photons, model, method="admm", iterations=iterations,
-                                       init=state, return_info=True)
-        state = info.state
+    photons = ((video - dark) / counts_per_photon).astype(np.float32)
+    settings = SolverSettings(method="admm", iterations=iterations, warm_start_frames=n_frames)
+    volumes = np.full((n_frames, *model.shape_in), np.nan, dtype=np.float32)
+    for t, result in enumerate(solve_chain(photons, model, settings)):
+        if result.volume is not None:
+            volumes[t] = result.volume
     dt, dz, px = scenario.frame_interval_s, scenario.depth_step_um, scenario.pixel_size_um
     z0 = scenario.depth_start_um
     high = float(np.percentile(volumes.max(axis=(1, 2, 3)), 50)) or 1.0

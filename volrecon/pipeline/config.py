@@ -17,6 +17,7 @@ from pathlib import Path
 from typing import Any
 
 from volrecon.errors import ConfigError
+from volrecon.solvers.settings import SolverSettings
 
 __all__ = [
     "ComputeSettings",
@@ -38,26 +39,6 @@ def job_schema() -> dict[str, Any]:
     """The job file's JSON Schema (2020-12) as a dict (a fresh copy each call is not made)."""
     with open(SCHEMA_PATH, encoding="utf-8") as handle:
         return json.load(handle)  # type: ignore[no-any-return]
-
-
-@dataclass(frozen=True)
-class SolverSettings:
-    """The ``[solver]`` section: arguments of :func:`volrecon.reconstruct` for every frame."""
-
-    method: str = "admm"
-    iterations: int = 60
-    tv: float = 0.0
-    l1: float = 0.0
-    tol: float = 1e-4
-    tv_z_weight: float = 1.0
-    warm_start: bool = True
-    warm_start_frames: int = 8
-    max_residual: float = 2.0
-
-    @property
-    def chain_frames(self) -> int:
-        """Frames per warm-start chain (1 without warm start)."""
-        return self.warm_start_frames if self.warm_start else 1
 
 
 @dataclass(frozen=True)
@@ -122,7 +103,7 @@ class JobConfig:
     time_interval_s: float = 1.0
     max_projections: bool = False
     compression_level: int = 3
-    solver: SolverSettings = SolverSettings()
+    solver: SolverSettings = field(default_factory=SolverSettings)
     compute: ComputeSettings = ComputeSettings()
 
     def settings(self) -> dict[str, Any]:

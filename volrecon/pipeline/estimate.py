@@ -19,7 +19,7 @@ from volrecon.pipeline.execute import fft_threads_per_task
 from volrecon.pipeline.job import prepare_job
 from volrecon.pipeline.status import format_duration
 from volrecon.pipeline.store import PROJECTIONS, max_projections
-from volrecon.pipeline.task import solve_frame
+from volrecon.solvers.chain import solve_chain
 
 if TYPE_CHECKING:
     from volrecon.pipeline.config import JobConfig
@@ -106,16 +106,14 @@ def estimate_job(job: JobConfig, *, sample_frames: int = 3) -> JobEstimate:
     start = prepared.first_frame
     frames = prepared.correction.apply(prepared.source.read(start, start + n))
     seconds, iterations, volumes = [], [], []
-    state = None
-    for frame in frames:
-        t0 = time.perf_counter()
-        volume, info, _reason = solve_frame(frame, model, job.solver, state, threads)
+    t0 = time.perf_counter()
+    for result in solve_chain(frames, model, job.solver):
         seconds.append(time.perf_counter() - t0)
-        if info is not None:
-            iterations.append(info.iterations)
-            state = info.state if job.solver.warm_start else None
-        if volume is not None:
-            volumes.append(np.asarray(volume, np.float32))
+        if result.info is not None:
+            iterations.append(result.info.iterations)
+        if result.volume is not None:
+            volumes.append(result.volume)
+        t0 = time.perf_counter()
     per_frame = float(np.mean(seconds[1:] if len(seconds) > 1 else seconds))
     compute = job.compute
     parallel = compute.workers if compute.scheduler in ("threads", "processes", "local-cluster") \

@@ -9,14 +9,12 @@ from its store inside the worker, once per process.
 from __future__ import annotations
 
 import logging
-import math
 from dataclasses import dataclass
 from functools import lru_cache
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from volrecon.errors import VolreconError
 from volrecon.io.ome_zarr import IMAGE_PATH
 from volrecon.pipeline.store import (
     PROJECTIONS,
@@ -25,14 +23,15 @@ from volrecon.pipeline.store import (
     FrameRecords,
     max_projections,
 )
+from volrecon.solvers.chain import solve_chain
 
 if TYPE_CHECKING:
     from volrecon.io.correct import FrameCorrection
     from volrecon.io.frames import FrameSource
     from volrecon.models.base import PSFModel
-    from volrecon.pipeline.config import SolverSettings
+    from volrecon.solvers.settings import SolverSettings
 
-__all__ = ["TaskContext", "TaskSpec", "run_task", "solve_frame"]
+__all__ = ["TaskContext", "TaskSpec", "run_task"]
 
 logger = logging.getLogger(__name__)
 
@@ -111,7 +110,7 @@ def run_task(context: TaskContext, spec: TaskSpec) -> FrameRecords:
     only on its chain, never on task size, scheduler or interruptions. A frame that fails (its
     input is not finite, the solver refuses it, the result is not finite or its residual
     exceeds ``max_residual``) is written as NaN, recorded with its reason, and the chain
-    restarts at the next frame.
+    restarts at the next frame (:func:`volrecon.solvers.solve_chain`).
 
     Raises
     ------
@@ -133,65 +132,34 @@ def run_task(context: TaskContext, spec: TaskSpec) -> FrameRecords:
         "residual": np.full(n, np.nan), "converged": np.zeros(n, bool),
         "seconds": np.full(n, np.nan, np.float32), "status": np.zeros(n, np.uint8)}
     failures: dict[int, str] = {}
-    chain = solver.chain_frames
-    state = None
-    for chain_start in range(spec.start, spec.stop, chain):
-        chain_stop = min(chain_start + chain, spec.stop)
+    for chain_start in range(spec.start, spec.stop, solver.chain_frames):
+        chain_stop = min(chain_start + solver.chain_frames, spec.stop)
         raw = context.source.read(context.first_frame + chain_start,
                                   context.first_frame + chain_stop)
         frames = context.correction.apply(raw)
         del raw
-        state = None
-        for offset, frame in enumerate(frames):
+        for offset, result in enumerate(solve_chain(frames, model, solver)):
             t = chain_start + offset
             i = t - spec.start
-            volume, info, reason = solve_frame(frame, model, solver, state, threads)
-            if reason is None:
-                state = info.state if solver.warm_start else None
+            volume = result.volume
+            if result.failure is None:
                 records["status"][i] = STATUS_DONE
             else:
-                state = None
                 volume = np.full(model.shape_in, np.nan, dtype=np.float32)
                 records["status"][i] = STATUS_FAILED
-                failures[t] = reason
+                failures[t] = result.failure
                 logger.warning("frame %d (video frame %d): %s", t, context.first_frame + t,
-                               reason)
+                               result.failure)
+            info = result.info
             if info is not None:
                 records["iterations"][i] = info.iterations
                 records["objective"][i] = info.objective
                 records["residual"][i] = info.residual
                 records["converged"][i] = info.converged
                 records["seconds"][i] = info.seconds
-            volume = np.asarray(volume, dtype=np.float32)
             image[t] = volume
             if projections:
                 for name, projected in max_projections(volume).items():
                     projections[name][t] = projected
     return FrameRecords(start=spec.start, stop=spec.stop, failures=failures, **records)
 
-
-def solve_frame(frame: np.ndarray, model: PSFModel, solver: SolverSettings, state: Any,
-           threads: int) -> tuple[Any, Any, str | None]:
-    """Reconstruct one frame: (volume, info, None) or (None, info or None, failure reason)."""
-    from volrecon.solvers import reconstruct
-
-    if not np.all(np.isfinite(frame)):
-        return None, None, "the corrected frame contains NaN or Inf pixels"
-    try:
-        # A diverging frame overflows; the result is checked below and the frame marked
-        # failed, so numpy's floating-point warnings would only repeat that (or, where
-        # warnings are errors, abort the whole job).
-        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-            volume, info = reconstruct(
-                frame, model, method=solver.method, iterations=solver.iterations, tv=solver.tv,
-                l1=solver.l1, tol=solver.tol, tv_z_weight=solver.tv_z_weight, init=state,
-                device=model.backend.device, threads=threads, return_info=True)
-    except (VolreconError, ArithmeticError, np.linalg.LinAlgError) as exc:
-        return None, None, f"the solver refused the frame: {exc}"
-    volume = model.backend.to_numpy(volume)
-    if not (np.all(np.isfinite(volume)) and math.isfinite(info.objective)):
-        return None, info, "diverged: the volume or objective is NaN or Inf"
-    if math.isfinite(info.residual) and info.residual > solver.max_residual:
-        return None, info, (f"diverged: relative residual {info.residual:.3g} exceeds "
-                            f"max_residual = {solver.max_residual:g}")
-    return volume, info, None

@@ -1,7 +1,24 @@
-"""Solvers: pure array maths, one frame at a time (ADMM, FISTA, Richardson–Lucy)."""
+"""Solvers: pure array maths, one frame at a time (ADMM, FISTA, Richardson–Lucy).
 
+:class:`SolverSettings` is the one settings type and :func:`solve_chain` the one warm-start
+loop; every caller (jobs, estimate, tuning, previews, benchmarks) goes through them.
+"""
+
+from volrecon.solvers.chain import FrameResult, solve_chain, solve_frame
 from volrecon.solvers.info import SolveInfo, SolverState
-from volrecon.solvers.reconstruct import METHODS, objective, reconstruct
+from volrecon.solvers.reconstruct import objective, reconstruct
+from volrecon.solvers.settings import METHODS, SolverSettings
 from volrecon.solvers.tv import tv_value
 
-__all__ = ["METHODS", "SolveInfo", "SolverState", "objective", "reconstruct", "tv_value"]
+__all__ = [
+    "METHODS",
+    "FrameResult",
+    "SolveInfo",
+    "SolverSettings",
+    "SolverState",
+    "objective",
+    "reconstruct",
+    "solve_chain",
+    "solve_frame",
+    "tv_value",
+]

@@ -13,6 +13,7 @@ from volrecon.solvers.admm import solve_admm
 from volrecon.solvers.fista import solve_fista
 from volrecon.solvers.info import SolveInfo, SolverState
 from volrecon.solvers.rl import solve_rl
+from volrecon.solvers.settings import METHODS
 from volrecon.solvers.tv import tv_value
 
 if TYPE_CHECKING:
@@ -21,7 +22,6 @@ if TYPE_CHECKING:
 
 __all__ = ["METHODS", "objective", "reconstruct"]
 
-METHODS = ("admm", "fista", "rl")
 _SOLVERS = {"admm": solve_admm, "fista": solve_fista, "rl": solve_rl}
 
 

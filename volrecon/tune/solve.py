@@ -7,41 +7,21 @@ reconstructs consecutive frames with warm start, as a job's chain does.
 
 from __future__ import annotations
 
+import dataclasses
 import time
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
 import numpy as np
 
+from volrecon.solvers import reconstruct
+from volrecon.solvers import solve_chain as chain
+
 if TYPE_CHECKING:
     from volrecon.models.base import PSFModel
+    from volrecon.solvers import SolverSettings
 
-__all__ = ["SiteSolve", "SolverCall", "solve_chain", "solve_site"]
-
-
-@dataclass(frozen=True)
-class SolverCall:
-    """Solver arguments shared by the calls of one sweep (pickles with each task).
-
-    Attributes
-    ----------
-    method : str
-        "admm", "fista" or "rl".
-    tol : float
-        Stopping tolerance of the solver.
-    tv_z_weight : float
-        Depth weight of TV.
-    device : str
-        "cpu" or "gpu".
-    threads : int or None
-        FFT threads per call.
-    """
-
-    method: str
-    tol: float
-    tv_z_weight: float
-    device: str
-    threads: int | None
+__all__ = ["SiteSolve", "solve_chain", "solve_site"]
 
 
 @dataclass(frozen=True)
@@ -69,32 +49,26 @@ class SiteSolve:
     seconds: float
 
 
-def _reconstruct(model: PSFModel, frame: np.ndarray, tv: float, l1: float, iterations: int,
-                 call: SolverCall, init: object) -> tuple[np.ndarray, object, int]:
-    from volrecon.solvers import reconstruct
-
-    volume, info = reconstruct(frame, model, method=call.method, iterations=int(iterations),
-                               tv=float(tv), l1=float(l1), tol=call.tol,
-                               tv_z_weight=call.tv_z_weight, init=init, device=call.device,
-                               threads=call.threads, return_info=True)
-    return np.asarray(model.backend.to_numpy(volume), dtype=np.float32), info.state, \
-        int(info.iterations)
+def _with(settings: SolverSettings, tv: float, l1: float, iterations: int) -> SolverSettings:
+    return dataclasses.replace(settings, tv=float(tv), l1=float(l1), iterations=int(iterations))
 
 
 def solve_site(model: PSFModel, frames_3yx: np.ndarray, tv: float, l1: float,
-               iterations: int, call: SolverCall) -> SiteSolve:
+               iterations: int, settings: SolverSettings) -> SiteSolve:
     """Reconstruct frame 1 of three consecutive corrected frames from scratch and score it.
 
     Parameters
     ----------
     model : PSFModel
+        On its device with its FFT threads.
     frames_3yx : ndarray of shape (3, Y, X), float32
         Corrected frames ``t − 1, t, t + 1``.
     tv, l1 : float
         Regularisation weights.
     iterations : int
         Iteration limit.
-    call : SolverCall
+    settings : SolverSettings
+        The job's solver settings (its `tv`, `l1` and `iterations` are replaced).
 
     Returns
     -------
@@ -102,7 +76,12 @@ def solve_site(model: PSFModel, frames_3yx: np.ndarray, tv: float, l1: float,
     """
     start = time.perf_counter()
     frame = np.ascontiguousarray(frames_3yx[1], dtype=np.float32)
-    volume, _, n_iter = _reconstruct(model, frame, tv, l1, iterations, call, None)
+    site = _with(settings, tv, l1, iterations)
+    solved, info = reconstruct(frame, model, method=site.method, iterations=site.iterations,
+                               tv=site.tv, l1=site.l1, tol=site.tol,
+                               tv_z_weight=site.tv_z_weight, return_info=True)
+    volume = np.asarray(model.backend.to_numpy(solved), dtype=np.float32)
+    n_iter = int(info.iterations)
     predicted = np.asarray(model.forward(volume), dtype=np.float64)
     residual = predicted - frame
     holdout = predicted - 0.5 * (frames_3yx[0].astype(np.float64) + frames_3yx[2])
@@ -112,18 +91,19 @@ def solve_site(model: PSFModel, frames_3yx: np.ndarray, tv: float, l1: float,
 
 
 def solve_chain(model: PSFModel, frames_tyx: np.ndarray, tv: float, l1: float,
-                iterations: int, call: SolverCall) -> np.ndarray:
-    """Reconstruct consecutive frames, each warm-started from the previous one's state.
+                iterations: int, settings: SolverSettings) -> np.ndarray:
+    """Reconstruct consecutive frames as one warm-start chain of a job does.
 
-    The first frame starts from scratch, as the first frame of a job's warm-start chain.
+    Runs :func:`volrecon.solvers.solve_chain` with the job's settings (its `tv`, `l1` and
+    `iterations` replaced); a frame the job would record as failed is NaN here.
 
     Returns
     -------
     ndarray of shape (T, Z, Y, X), float32
     """
-    volumes = np.empty((len(frames_tyx), *model.shape_in), dtype=np.float32)
-    state: object = None
-    for t, frame in enumerate(frames_tyx):
-        volumes[t], state, _ = _reconstruct(model, np.ascontiguousarray(frame, np.float32),
-                                            tv, l1, iterations, call, state)
+    volumes = np.full((len(frames_tyx), *model.shape_in), np.nan, dtype=np.float32)
+    frames = (np.ascontiguousarray(frame, np.float32) for frame in frames_tyx)
+    for t, result in enumerate(chain(frames, model, _with(settings, tv, l1, iterations))):
+        if result.volume is not None:
+            volumes[t] = result.volume
     return volumes

@@ -21,6 +21,7 @@ Order of work (nothing is written; see :func:`volrecon.tune.write_tuned_job` and
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 import math
 import os
@@ -38,7 +39,7 @@ from volrecon.tune.iterations import IterationCheck, candidate_counts, chain_err
 from volrecon.tune.noise import FrameNoise, dark_statistics, estimate_frame_noise
 from volrecon.tune.reference import registered_correlation
 from volrecon.tune.sites import Site, choose_site_frames, read_sites
-from volrecon.tune.solve import SiteSolve, SolverCall, solve_chain, solve_site
+from volrecon.tune.solve import SiteSolve, solve_chain, solve_site
 from volrecon.tune.sweep import (
     COARSE_L1_UNITS,
     COARSE_TV_UNITS,
@@ -50,6 +51,7 @@ from volrecon.tune.sweep import (
 if TYPE_CHECKING:
     from volrecon.models.base import Geometry, PSFModel
     from volrecon.pipeline.config import JobConfig
+    from volrecon.solvers import SolverSettings
 
 __all__ = ["TuneResult", "tune_job"]
 
@@ -176,7 +178,7 @@ def _read_reference(reference: str | os.PathLike[str] | np.ndarray, model: PSFMo
 
 
 def _cells(model: PSFModel, sites: Sequence[Site], noise: FrameNoise, unit: float,
-           settings: Sequence[tuple[float, float]], iterations: int, call: SolverCall,
+           settings: Sequence[tuple[float, float]], iterations: int, call: SolverSettings,
            job: JobConfig, stage: int, reference: np.ndarray | None, client: Any
            ) -> list[SweepCell]:
     """Reconstruct every setting on every site and score it."""
@@ -221,7 +223,7 @@ def _chain_frames(site: Site, warm_start: bool) -> list[np.ndarray]:
 
 
 def _run_chains(model: PSFModel, sites: Sequence[Site], tv: float, l1: float, iterations: int,
-                call: SolverCall, job: JobConfig, client: Any) -> list[np.ndarray]:
+                call: SolverSettings, job: JobConfig, client: Any) -> list[np.ndarray]:
     pieces = [(site_index, chain) for site_index, site in enumerate(sites)
               for chain in _chain_frames(site, job.solver.warm_start)]
     results = run_calls(solve_chain, model,
@@ -338,9 +340,8 @@ def tune_job(job: JobConfig | str | os.PathLike[str], *, frames: Sequence[int] |
     say(f"noise: gain {noise.gain_adu_per_electron:.4g} counts per electron, read variance "
         f"{float(noise.intercept_yx.mean()):.4g} counts^2; weight unit u = {unit:.4g}")
 
-    call = SolverCall(method=job.solver.method, tol=job.solver.tol,
-                      tv_z_weight=job.solver.tv_z_weight, device=job.compute.device,
-                      threads=fft_threads_per_task(job.compute))
+    call = job.solver
+    model = model.on_device(job.compute.device, threads=fft_threads_per_task(job.compute) or 1)
     coarse = [(t, w) for t in COARSE_TV_UNITS for w in COARSE_L1_UNITS]
     say(f"coarse sweep: {len(coarse)} settings x {len(sites)} frames, {sweep_iterations} "
         "iterations each")
@@ -363,7 +364,7 @@ def tune_job(job: JobConfig | str | os.PathLike[str], *, frames: Sequence[int] |
     order = sorted(range(len(sites)), key=lambda i: abs(i - (len(sites) - 1) / 2))
     chain_sites = [sites[i] for i in sorted(order[:max(1, min(job.compute.workers,
                                                                len(sites)))])]
-    reference_call = SolverCall(call.method, 0.0, call.tv_z_weight, call.device, call.threads)
+    reference_call = dataclasses.replace(call, tol=0.0)
     say(f"iterations: converged chain of {reference_iterations} iterations per frame, then "
         f"candidates up to {max_iterations} (tolerance {tolerance:g})")
     converged = _run_chains(model, chain_sites, chosen.tv, chosen.l1, reference_iterations,
@@ -408,6 +409,4 @@ def tune_job(job: JobConfig | str | os.PathLike[str], *, frames: Sequence[int] |
 
 
 def _replace_stability(cell: SweepCell, value: float) -> SweepCell:
-    import dataclasses
-
     return dataclasses.replace(cell, stability=float(value))

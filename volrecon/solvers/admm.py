@@ -13,6 +13,17 @@ Splits (scaled form, Boyd et al. 2011): ``x = M v`` (padded sensor plane), ``y =
     v ← (μ₁MᵀM + μ₂∇ᵀ∇ + μ₃I)⁻¹ [μ₁Mᵀ(x − α) + μ₂∇ᵀ(y − β) + μ₃(w − γ)]
     α += Mv − x;  β += ∇v − y;  γ += v − w
 
+The code runs the over-relaxed form of these updates (Boyd §3.4.3, ρ = ``RELAXATION``):
+after the x-, y- and w-updates each split is replaced by its relaxed value before the
+v-update and the dual updates use it too::
+
+    x̂ = ρx + (1 − ρ)Mv;   ŷ = ρy + (1 − ρ)∇v;   ŵ = ρw + (1 − ρ)v
+    v ← (μ₁MᵀM + μ₂∇ᵀ∇ + μ₃I)⁻¹ [μ₁Mᵀ(x̂ − α) + μ₂∇ᵀ(ŷ − β) + μ₃(ŵ − γ)]
+    α += Mv − x̂;  β += ∇v − ŷ;  γ += v − ŵ
+
+(the duals are carried implicitly as ``v − γ`` and ``∇v − β``, see
+:mod:`volrecon.solvers.admm_steps`).
+
 The v-update is exact: in the lateral DFT the depth coupling ``MᵀM`` is ``a aᴴ`` with
 ``a = conj(Ĥ(f)) ∈ ℂ^Z`` per frequency, the lateral TV Laplacian is the scalar
 ``L(f) = |1−e^{−2πi f_y}|² + |1−e^{−2πi f_x}|²`` and the depth one the Neumann second

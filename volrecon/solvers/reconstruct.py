@@ -30,13 +30,24 @@ def objective(volume_zyx: Any, frame_yx: Any, model: PSFModel, *, tv: float = 0.
     """``½‖A v − b‖² + l1·Σv + tv·TV(v)`` in float64 (TV as in :mod:`volrecon.solvers.tv`)."""
     be = model.backend
     v = be.asarray(volume_zyx, dtype=model.dtype)
-    residual = be.to_numpy(model.forward(v)).astype(np.float64) - np.asarray(
-        be.to_numpy(be.asarray(frame_yx)), dtype=np.float64)
+    residual = _residual(v, be.asarray(frame_yx), model)
+    return _objective(v, residual, model, tv=tv, l1=l1, tv_z_weight=tv_z_weight)
+
+
+def _residual(volume: Any, frame: Any, model: PSFModel) -> np.ndarray:
+    """``A v − b`` on the host in float64 (one application of A)."""
+    be = model.backend
+    return be.to_numpy(model.forward(volume)).astype(np.float64) - np.asarray(
+        be.to_numpy(frame), dtype=np.float64)
+
+
+def _objective(volume: Any, residual: np.ndarray, model: PSFModel, *, tv: float, l1: float,
+               tv_z_weight: float) -> float:
     value = 0.5 * float(np.vdot(residual, residual))
     if l1:
-        value += l1 * float(be.to_numpy(v).sum(dtype=np.float64))
+        value += l1 * float(model.backend.to_numpy(volume).sum(dtype=np.float64))
     if tv:
-        value += tv * tv_value(v, tv_z_weight)
+        value += tv * tv_value(volume, tv_z_weight)
     return value
 
 
@@ -171,8 +182,9 @@ def reconstruct(
     if not return_info:
         return volume
     seconds = time.perf_counter() - t0
-    value = objective(volume, frame, model, tv=tv, l1=l1, tv_z_weight=tv_z_weight)
-    residual = be.to_numpy(model.forward(volume)).astype(np.float64) - be.to_numpy(frame)
+    # One application of A serves both the objective and the relative residual.
+    residual = _residual(volume, frame, model)
+    value = _objective(volume, residual, model, tv=tv, l1=l1, tv_z_weight=tv_z_weight)
     frame_norm = float(np.linalg.norm(be.to_numpy(frame)))
     relative = float(np.linalg.norm(residual)) / frame_norm if frame_norm > 0 else float("nan")
     info = SolveInfo(method, n_iter, value, relative, converged, seconds, state, history)

@@ -26,7 +26,7 @@ if TYPE_CHECKING:
     from volrecon.pipeline.config import ComputeSettings
     from volrecon.pipeline.task import TaskContext, TaskSpec
 
-__all__ = ["execute_tasks", "fft_threads_per_task", "open_client"]
+__all__ = ["execute_tasks", "fft_threads_per_task", "open_client", "open_local_scheduler"]
 
 logger = logging.getLogger(__name__)
 
@@ -98,27 +98,44 @@ def _execute_local(tasks: Sequence[TaskSpec], context: TaskContext, compute: Com
         if isinstance(result, FrameRecords):
             on_result(result)
 
-    pool: Executor | None = None
-    if compute.scheduler == "threads":
-        pool = ThreadPoolExecutor(compute.workers, thread_name_prefix="volrecon-task")
-    elif compute.scheduler == "processes":
-        pool = ProcessPoolExecutor(compute.workers,
-                                   mp_context=multiprocessing.get_context("spawn"))
-    elif compute.scheduler != "synchronous":
-        raise ConfigError(f"unknown local scheduler {compute.scheduler!r}")
     wave = max(1, WAVE_TASKS_PER_WORKER * compute.workers)
     shared = delayed(context, pure=False)
     # Passed to this computation only (not registered globally): (start, start_state,
     # pretask, posttask, finish), the form dask.local.get_async takes.
     callbacks = [(None, None, None, posttask, None)]
-    try:
+    with open_local_scheduler(compute, name="volrecon-task") as kwargs:
         for first in range(0, len(tasks), wave):
             graph = [delayed(run_task, pure=False)(shared, spec)
                      for spec in tasks[first:first + wave]]
-            kwargs: dict[str, Any] = {"scheduler": compute.scheduler, "callbacks": callbacks}
-            if pool is not None:
-                kwargs.update(pool=pool, num_workers=compute.workers)
-            dask_compute(*graph, **kwargs)  # type: ignore[no-untyped-call]
+            dask_compute(*graph, callbacks=callbacks, **kwargs)  # type: ignore[no-untyped-call]
+
+
+@contextlib.contextmanager
+def open_local_scheduler(compute: ComputeSettings, *, name: str) -> Iterator[dict[str, Any]]:
+    """Keyword arguments of ``dask.compute`` for a local ``[compute] scheduler``.
+
+    "threads" and "processes" run in a pool of ``compute.workers`` (spawned processes, so
+    numba and FFT thread pools are never forked) that is shut down on exit, in-flight work
+    awaited; "synchronous" runs in the calling thread.
+
+    Raises
+    ------
+    ConfigError
+        For a scheduler that is not a local one.
+    """
+    pool: Executor | None = None
+    if compute.scheduler == "threads":
+        pool = ThreadPoolExecutor(compute.workers, thread_name_prefix=name)
+    elif compute.scheduler == "processes":
+        pool = ProcessPoolExecutor(compute.workers,
+                                   mp_context=multiprocessing.get_context("spawn"))
+    elif compute.scheduler != "synchronous":
+        raise ConfigError(f"unknown local scheduler {compute.scheduler!r}")
+    kwargs: dict[str, Any] = {"scheduler": compute.scheduler}
+    if pool is not None:
+        kwargs.update(pool=pool, num_workers=compute.workers)
+    try:
+        yield kwargs
     finally:
         if pool is not None:
             pool.shutdown(wait=True, cancel_futures=True)

@@ -11,9 +11,7 @@ enters the graph once.
 from __future__ import annotations
 
 import contextlib
-import multiprocessing
 from collections.abc import Callable, Iterator, Sequence
-from concurrent.futures import Executor, ProcessPoolExecutor, ThreadPoolExecutor
 from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
@@ -50,34 +48,22 @@ def run_calls(function: Callable[..., Any], model: PSFModel, calls: Sequence[tup
 
     if not calls:
         return []
-    with _scheduler(compute, client) as (scheduler, pool):
+    with _scheduler(compute, client) as kwargs:
         shared = delayed(model, pure=False)
         graph = [delayed(function, pure=False)(shared, *call) for call in calls]
-        kwargs: dict[str, Any] = {"scheduler": scheduler}
-        if pool is not None:
-            kwargs.update(pool=pool, num_workers=compute.workers)
         return list(dask_compute(*graph, **kwargs))  # type: ignore[no-untyped-call]
 
 
 @contextlib.contextmanager
-def _scheduler(compute: ComputeSettings, client: Any) -> Iterator[tuple[Any, Executor | None]]:
-    if client is not None:
-        yield client, None
-        return
-    if compute.scheduler == "synchronous":
-        yield "synchronous", None
-        return
-    if compute.scheduler in ("threads", "processes"):
-        pool: Executor = (ThreadPoolExecutor(compute.workers, thread_name_prefix="volrecon-tune")
-                          if compute.scheduler == "threads" else
-                          ProcessPoolExecutor(compute.workers,
-                                              mp_context=multiprocessing.get_context("spawn")))
-        try:
-            yield compute.scheduler, pool
-        finally:
-            pool.shutdown(wait=True, cancel_futures=True)
-        return
-    from volrecon.pipeline.execute import open_client
+def _scheduler(compute: ComputeSettings, client: Any) -> Iterator[dict[str, Any]]:
+    """``dask.compute`` keywords: the job's own executors (:mod:`volrecon.pipeline.execute`)."""
+    from volrecon.pipeline.execute import open_client, open_local_scheduler
 
-    with open_client(compute) as own:
-        yield own, None
+    if client is not None:
+        yield {"scheduler": client}
+    elif compute.is_distributed:
+        with open_client(compute) as own:
+            yield {"scheduler": own}
+    else:
+        with open_local_scheduler(compute, name="volrecon-tune") as kwargs:
+            yield kwargs

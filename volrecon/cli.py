@@ -139,7 +139,7 @@ def _add_status(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-a
     p = sub.add_parser(
         "status", help="show how far a job's store is (first line: <done>/<total>)",
         description="Print <done>/<total> frames on the first line, then the state, failed "
-        "frames, throughput and ETA. Safe while a run is writing the store.")
+        "frames, throughput and time left. Safe while a run is writing the store.")
     p.add_argument("store", metavar="OUT", help="the job's output store")
     p.set_defaults(run=_run_status)
 

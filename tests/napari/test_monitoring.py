@@ -34,7 +34,7 @@ def test_snapshot_while_a_run_holds_the_lock_gives_an_eta(output_store):
     # 6 frames since gives 0.2 frames/s and 4 pending frames 20 s to go. The test's own run
     # time adds a little to the 30 s, hence the loose tolerance.
     assert s.frames_per_second == pytest.approx(FINISHED / 30.0, rel=0.1)
-    assert s.eta_s == pytest.approx((N_FRAMES - FINISHED) / (FINISHED / 30.0), rel=0.1)
+    assert s.seconds_left == pytest.approx((N_FRAMES - FINISHED) / (FINISHED / 30.0), rel=0.1)
     assert snapshot.summary()[-1].startswith("time left: 2")
 
 

@@ -29,7 +29,7 @@ class JobSnapshot:
     Attributes
     ----------
     status : StoreStatus
-        Counts, state, throughput and ETA (see :func:`volrecon.pipeline.store_status`).
+        Counts, state, throughput and time left (see :func:`volrecon.pipeline.store_status`).
     diagnostics : dict of str to ndarray of shape (T,)
         ``status``, ``iterations``, ``objective``, ``residual``, ``converged``, ``seconds``;
         empty if the store's creation was interrupted.
@@ -51,7 +51,7 @@ class JobSnapshot:
         if math.isfinite(s.frames_per_second):
             lines.append(f"throughput: {s.frames_per_second:.3g} frames/s")
         if s.running:
-            lines.append(f"time left: {format_duration(s.eta_s)}")
+            lines.append(f"time left: {format_duration(s.seconds_left)}")
         return lines
 
     def details(self) -> list[str]:

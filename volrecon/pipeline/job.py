@@ -110,7 +110,7 @@ class JobProgress:
         Seconds since this run started computing.
     frames_per_second : float
         This run's throughput.
-    eta_s : float
+    seconds_left : float
         Seconds left at this throughput (``inf`` before the first task ends).
     """
 
@@ -121,7 +121,7 @@ class JobProgress:
     computed: int
     elapsed_s: float
     frames_per_second: float
-    eta_s: float
+    seconds_left: float
 
 
 @dataclass(frozen=True)
@@ -439,11 +439,11 @@ def _run(prepared: PreparedJob, store: JobStore, *,
         if progress is not None:
             elapsed = time.perf_counter() - compute_started
             rate = counts["computed"] / elapsed if elapsed > 0 else 0.0
-            eta = (total - counts["done"]) / rate if rate > 0 else float("inf")
+            seconds_left = (total - counts["done"]) / rate if rate > 0 else float("inf")
             progress(JobProgress(done=counts["done"], done_at_start=done_before, total=total,
                                  failed=counts["failed"],
                                  computed=counts["computed"], elapsed_s=elapsed,
-                                 frames_per_second=rate, eta_s=eta))
+                                 frames_per_second=rate, seconds_left=seconds_left))
 
     outcome = "error"
     failure: BaseException | None = None

@@ -44,7 +44,7 @@ class StoreStatus:
         That process's pid, host and start time (or a dead holder's, if not ``running``).
     frames_per_second : float
         Throughput of the current run (or of the last one).
-    eta_s : float
+    seconds_left : float
         Seconds until the current run is done at that throughput (``nan`` if not running).
     runs : list of dict
         Every run's record (start, end, outcome, scheduler, …).
@@ -58,7 +58,7 @@ class StoreStatus:
     running: bool = False
     holder: dict[str, Any] | None = None
     frames_per_second: float = float("nan")
-    eta_s: float = float("nan")
+    seconds_left: float = float("nan")
     runs: list[dict[str, Any]] = field(default_factory=list)
 
     @property
@@ -103,7 +103,7 @@ def store_status(path: str | os.PathLike[str]) -> StoreStatus:
     done = int(np.count_nonzero(status != STATUS_PENDING))
     failed = int(np.count_nonzero(status == STATUS_FAILED))
     runs = list(store.attributes.get("runs", []))
-    rate, eta = float("nan"), float("nan")
+    rate, seconds_left = float("nan"), float("nan")
     if runs:
         last = runs[-1]
         before = int(last.get("frames_done_before", 0))
@@ -111,14 +111,14 @@ def store_status(path: str | os.PathLike[str]) -> StoreStatus:
         if running and last.get("outcome") == "running":
             elapsed = time.time() - start
             rate = (done - before) / elapsed if elapsed > 0 else float("nan")
-            eta = (len(status) - done) / rate if rate > 0 else float("inf")
+            seconds_left = (len(status) - done) / rate if rate > 0 else float("inf")
         elif "ended_epoch_s" in last:
             elapsed = float(last["ended_epoch_s"]) - start
             computed = int(last.get("frames_done_after", before)) - before
             rate = computed / elapsed if elapsed > 0 and computed > 0 else float("nan")
     return StoreStatus(path=path, total=len(status), done=done, failed=failed,
                        failures=store.failures(), running=running, holder=holder,
-                       frames_per_second=rate, eta_s=eta, runs=runs)
+                       frames_per_second=rate, seconds_left=seconds_left, runs=runs)
 
 
 def format_status(status: StoreStatus, *, max_failures: int = 20) -> list[str]:
@@ -141,8 +141,8 @@ def format_status(status: StoreStatus, *, max_failures: int = 20) -> list[str]:
     if np.isfinite(status.frames_per_second):
         which = "current run" if status.running else "last run"
         lines.append(f"throughput: {status.frames_per_second:.3g} frames/s ({which})")
-    if status.running and np.isfinite(status.eta_s):
-        lines.append(f"eta: {format_duration(status.eta_s)}")
+    if status.running and np.isfinite(status.seconds_left):
+        lines.append(f"time left: {format_duration(status.seconds_left)}")
     return lines
 
 

@@ -22,8 +22,8 @@ import tomli_w
 from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 
-from volrecon.calibrate.stack_file import read_tiff_stack
 from volrecon.errors import VolreconError
+from volrecon.io import read_tiff_stack
 from volrecon.io.frames import open_frames, read_image
 from volrecon.models import DepthConvolutionPSF, FieldVaryingPSF, Geometry, LowRankDepthPSF
 from volrecon.models.store import load_model

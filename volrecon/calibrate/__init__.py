@@ -33,7 +33,8 @@ from volrecon.calibrate.metrics import autocorrelation_fwhm, axial_resolution, d
 from volrecon.calibrate.options import parse_crop, parse_rank
 from volrecon.calibrate.registration import estimate_shift, shift_image
 from volrecon.calibrate.report import CalibrationReport
-from volrecon.calibrate.stack_file import read_positions, read_tiff_stack
+from volrecon.calibrate.stack_file import read_positions
+from volrecon.io.tiff import read_tiff_stack
 
 __all__ = [
     "Calibration",

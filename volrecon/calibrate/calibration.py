@@ -392,7 +392,8 @@ def calibrate_file(
     directory and the model to a temporary store, each renamed into place, so a failure
     never leaves a partial model behind.
     """
-    from volrecon.calibrate.stack_file import read_positions, read_tiff_stack
+    from volrecon.calibrate.stack_file import read_positions
+    from volrecon.io.tiff import read_tiff_stack
     from volrecon.models.store import save_model
 
     out_path = Path(out)

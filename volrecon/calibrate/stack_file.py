@@ -1,101 +1,16 @@
-"""Reading calibration inputs: bead-scan and dark TIFFs, field-position CSV files."""
+"""Reading field-position CSV files (TIFF stacks: :func:`volrecon.io.read_tiff_stack`)."""
 
 from __future__ import annotations
 
 import csv
-import logging
 import os
-import struct
 from pathlib import Path
 
 import numpy as np
 
 from volrecon.errors import InputFileError, ShapeError
-from volrecon.io.frames import tiff_page_problem
 
-__all__ = ["read_positions", "read_tiff_stack"]
-
-
-class _Collect(logging.Handler):
-    """Keeps the messages tifffile logs (it logs, rather than raises, on broken page chains)."""
-
-    def __init__(self) -> None:
-        super().__init__(level=logging.WARNING)
-        self.messages: list[str] = []
-
-    def emit(self, record: logging.LogRecord) -> None:
-        self.messages.append(record.getMessage())
-
-
-def read_tiff_stack(path: str | os.PathLike[str], *, what: str = "bead scan") -> np.ndarray:
-    """Read every page of a grayscale TIFF into one array, refusing damaged files.
-
-    Parameters
-    ----------
-    path : path-like
-        A (multi-page) TIFF; the first series is read, e.g. (Z, Y, X) or (K, Z, Y, X).
-    what : str
-        What the file is, for error messages ("bead scan", "dark frame").
-
-    Returns
-    -------
-    ndarray
-        The stored dtype (any integer or float type), shape as stored.
-
-    Raises
-    ------
-    InputFileError
-        If the file is missing, not a TIFF, truncated or corrupt, colour, or of a
-        non-real dtype.
-    """
-    import tifffile
-
-    p = Path(path)
-    if not p.is_file():
-        raise InputFileError(f"{p}: no such file; check the path of the {what}")
-    collect = _Collect()
-    logger = logging.getLogger("tifffile")
-    # For the duration of the read, tifffile's warnings come here only: whatever level a
-    # caller set (the CLI silences tifffile) must not hide a broken page chain.
-    level, propagate = logger.level, logger.propagate
-    logger.setLevel(logging.WARNING)
-    logger.propagate = False
-    logger.addHandler(collect)
-    try:
-        with tifffile.TiffFile(p) as tf:
-            series = tf.series[0]
-            axes = series.axes
-            size = p.stat().st_size
-            for index, page in enumerate(series.pages):
-                problem = None if page is None else tiff_page_problem(page, size)
-                if problem is not None:
-                    raise InputFileError(f"{p}: page {index} of the {what} cannot be read: "
-                                         f"{problem}; the file is damaged, export it again")
-            data = series.asarray()
-    except InputFileError:
-        raise
-    except (ValueError, struct.error, OSError, RuntimeError, IndexError, KeyError, TypeError,
-            ArithmeticError, AssertionError) as exc:
-        # tifffile raises TiffFileError (a ValueError), struct.error on a cut header,
-        # ValueError on cut image data, codec errors (RuntimeError) on bad compression, and
-        # KeyError, TypeError, ZeroDivisionError or a failed internal assert on nonsense tags.
-        raise InputFileError(f"{p}: cannot read the {what} as TIFF ({exc}); the file is "
-                             "damaged or not a TIFF, export it again") from exc
-    finally:
-        logger.removeHandler(collect)
-        logger.setLevel(level)
-        logger.propagate = propagate
-    broken = [m for m in collect.messages if "invalid" in m or "corrupt" in m]
-    if broken:
-        raise InputFileError(f"{p}: the {what} TIFF is truncated or corrupt ({broken[0]}); "
-                             "export it again")
-    if axes.endswith("S") and data.shape[-1] in (3, 4):
-        raise InputFileError(f"{p}: the {what} is a colour (RGB) TIFF of shape {data.shape}; "
-                             "save it as a grayscale stack")
-    if not (np.issubdtype(data.dtype, np.integer) or np.issubdtype(data.dtype, np.floating)):
-        raise InputFileError(f"{p}: the {what} has pixel type {data.dtype}; use an integer or "
-                             "floating-point grayscale TIFF")
-    return data
+__all__ = ["read_positions"]
 
 
 def read_positions(path: str | os.PathLike[str], n_positions: int) -> np.ndarray:

@@ -12,6 +12,7 @@ from volrecon.io.frames import (
     read_image,
 )
 from volrecon.io.ome_zarr import create_ome_image, ome_image_attributes, volume_chunks
+from volrecon.io.tiff import capture_tifffile_log, read_tiff_stack, tiff_page_problem
 
 __all__ = [
     "FrameCorrection",
@@ -19,6 +20,7 @@ __all__ = [
     "TiffFrames",
     "TiffGlobFrames",
     "ZarrFrames",
+    "capture_tifffile_log",
     "create_ome_image",
     "fingerprint_file",
     "fingerprint_frames",
@@ -27,5 +29,7 @@ __all__ = [
     "ome_image_attributes",
     "open_frames",
     "read_image",
+    "read_tiff_stack",
+    "tiff_page_problem",
     "volume_chunks",
 ]

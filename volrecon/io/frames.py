@@ -20,8 +20,8 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from volrecon.backend import physical_memory_bytes
 from volrecon.errors import InputFileError, ShapeError
+from volrecon.io.tiff import capture_tifffile_log, tiff_page_problem
 
 if TYPE_CHECKING:
     import dask.array as da
@@ -34,7 +34,6 @@ __all__ = [
     "natural_sort_key",
     "open_frames",
     "read_image",
-    "tiff_page_problem",
 ]
 
 #: Exceptions a damaged TIFF raises (TiffFileError is a ValueError; a cut header a struct.error;
@@ -218,56 +217,24 @@ class TiffFrames(FrameSource):
         return out
 
 
-def tiff_page_problem(page: Any, file_size: int) -> str | None:
-    """Why a TIFF page's pixels cannot be read as its tags declare, or None if they can.
-
-    Checked on the tags alone, before any pixel is read: a damaged header can declare any
-    image size, and the TIFF reader allocates what is declared before it finds the data
-    missing.
-
-    Parameters
-    ----------
-    page : tifffile.TiffPage
-        The page.
-    file_size : int
-        Size of the file in bytes.
-
-    Returns
-    -------
-    str or None
-        The problem, in words, for an error message.
-    """
-    offsets, counts = tuple(page.dataoffsets), tuple(page.databytecounts)
-    if not offsets or len(offsets) != len(counts):
-        return "its tags point at no image data"
-    end = max(o + c for o, c in zip(offsets, counts, strict=True))
-    if end > file_size:
-        return f"its image data end at byte {end} but the file has {file_size} bytes"
-    declared = int(np.prod(page.shape, dtype=np.int64)) * np.dtype(page.dtype).itemsize
-    if int(getattr(page, "compression", 0)) == 1 and sum(counts) < declared:  # uncompressed
-        return f"its tags declare {declared} bytes of pixels but it holds {sum(counts)}"
-    if declared > physical_memory_bytes():
-        return f"its tags declare {declared} bytes of pixels, more than this machine's memory"
-    return None
-
-
 def _inspect_tiff(path: str, *, key: str = "[video] path"
                   ) -> tuple[tuple[int, int, int], np.dtype[Any], int | None, str]:
-    import tifffile
-
     if not os.path.isfile(path):
         what = "is a folder, not a TIFF file" if os.path.isdir(path) else "no such file"
         raise InputFileError(f"{path}: {what}; check {key} in the job file")
     size = os.path.getsize(path)
-    messages: list[str] = []
-    handler = _ListHandler(messages)
-    logger = logging.getLogger("tifffile")
-    # While the file is checked, tifffile's error log lines come here only: whatever level a
-    # caller set (the CLI silences tifffile) must not hide a broken page chain.
-    level, propagate = logger.level, logger.propagate
-    logger.setLevel(logging.ERROR)
-    logger.propagate = False
-    logger.addHandler(handler)
+    with capture_tifffile_log(logging.ERROR) as messages:
+        n_pages, frame_shape, dtype, offset, byte_order = _read_tiff_header(path, size, key)
+    if messages:
+        raise InputFileError(f"{path}: damaged TIFF ({messages[0]}); copy it again")
+    shape = (n_pages, frame_shape[0], frame_shape[1])
+    return shape, dtype.newbyteorder("="), offset, byte_order
+
+
+def _read_tiff_header(path: str, size: int, key: str
+                      ) -> tuple[int, tuple[int, ...], np.dtype[Any], int | None, str]:
+    import tifffile
+
     try:
         with tifffile.TiffFile(path) as tf:
             n_pages = len(tf.pages)
@@ -333,25 +300,7 @@ def _inspect_tiff(path: str, *, key: str = "[video] path"
         raise InputFileError(
             f"{path}: not a readable TIFF file ({exc}); check {key}"
         ) from exc
-    finally:
-        logger.removeHandler(handler)
-        logger.setLevel(level)
-        logger.propagate = propagate
-    if messages:
-        raise InputFileError(f"{path}: damaged TIFF ({messages[0]}); copy it again")
-    shape = (n_pages, frame_shape[0], frame_shape[1])
-    return shape, dtype.newbyteorder("="), offset, byte_order
-
-
-class _ListHandler(logging.Handler):
-    """Collects tifffile's error log lines (it logs, not raises, on a broken page chain)."""
-
-    def __init__(self, messages: list[str]) -> None:
-        super().__init__(level=logging.ERROR)
-        self.messages = messages
-
-    def emit(self, record: logging.LogRecord) -> None:
-        self.messages.append(record.getMessage())
+    return n_pages, frame_shape, dtype, offset, byte_order
 
 
 def natural_sort_key(name: str) -> list[Any]:

@@ -32,7 +32,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from volrecon.errors import ConfigError, DataError, InputFileError, ShapeError
+from volrecon.errors import ConfigError, DataError, ShapeError
 from volrecon.tune.criteria import Choice, choose_cell, stabilities
 from volrecon.tune.execute import run_calls
 from volrecon.tune.iterations import IterationCheck, candidate_counts, chain_error
@@ -154,18 +154,11 @@ def _read_reference(reference: str | os.PathLike[str] | np.ndarray, model: PSFMo
     if isinstance(reference, np.ndarray):
         volume, name = np.asarray(reference, dtype=np.float32), None
     else:
-        import struct
-
-        import tifffile
+        from volrecon.io import read_tiff_stack
 
         name = os.fspath(reference)
-        if not os.path.isfile(name):
-            raise InputFileError(f"{name}: no such file; check --reference")
-        try:
-            volume = np.asarray(tifffile.imread(name), dtype=np.float32)
-        except (ValueError, OSError, struct.error, KeyError) as exc:
-            raise InputFileError(f"{name}: cannot read the reference z-stack ({exc}); give a "
-                                 "TIFF with one page per plane") from exc
+        volume = read_tiff_stack(name, what="reference z-stack", key="--reference").astype(
+            np.float32)
     where = name or "reference"
     if volume.shape != tuple(model.shape_in):
         raise ShapeError(

@@ -141,13 +141,13 @@ def run_task(context: TaskContext, spec: TaskSpec) -> FrameRecords:
         for offset, result in enumerate(solve_chain(frames, model, solver)):
             t = chain_start + offset
             i = t - spec.start
-            volume = result.volume
-            if result.failure is None:
+            if result.volume is not None:
+                volume = result.volume
                 records["status"][i] = STATUS_DONE
             else:
                 volume = np.full(model.shape_in, np.nan, dtype=np.float32)
                 records["status"][i] = STATUS_FAILED
-                failures[t] = result.failure
+                failures[t] = result.failure or "no volume"
                 logger.warning("frame %d (video frame %d): %s", t, context.first_frame + t,
                                result.failure)
             info = result.info

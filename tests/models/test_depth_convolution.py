@@ -6,11 +6,12 @@ import pickle
 
 import numpy as np
 import pytest
+from operator_family import OperatorChecks
 from scipy.signal import fftconvolve
 
 import volrecon
 from volrecon.errors import DataError, ModelStoreError, ShapeError
-from volrecon.models import DepthConvolutionPSF, PSFModel
+from volrecon.models import DepthConvolutionPSF, Geometry, PSFModel
 from volrecon.models.testing import dot_test
 
 
@@ -73,6 +74,12 @@ def test_inputs_not_modified_and_as_given(rng):
     model = PSFModel.from_stack(psf, 1.0, 1.0)
     np.testing.assert_array_equal(psf, before)
     np.testing.assert_allclose(model.psf_zyx, before.astype(np.float32))  # no normalisation
+
+
+class TestDepthConvolutionOperator(OperatorChecks):
+    def make(self, rng, dtype):
+        return DepthConvolutionPSF(rng.random((4, 9, 8)).astype(dtype), Geometry(2.0, 0.5),
+                                   dtype=dtype)
 
 
 def test_operator_norm_matches_dense_svd(rng):

@@ -4,8 +4,6 @@ from __future__ import annotations
 
 import math
 import os
-import shutil
-import uuid
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
@@ -24,6 +22,7 @@ from volrecon.errors import (
     ShapeError,
     VolreconError,
 )
+from volrecon.io.files import replacing
 from volrecon.models.base import Geometry, PSFModel
 from volrecon.models.depth_convolution import DepthConvolutionPSF
 from volrecon.models.field_varying import FieldVaryingPSF
@@ -424,16 +423,9 @@ def calibrate_file(
     except VolreconError as exc:
         where = dark_path if ("dark frame" in str(exc) and dark_path is not None) else stack_path
         raise type(exc)(f"{where}: {exc}") from exc
-    staging = report_path.with_name(f".{report_path.name}.{uuid.uuid4().hex}.partial")
-    try:
+    with replacing(report_path) as staging:
         report = result.report.write(staging)
         save_model(result.model, out_path)
-        if report_path.exists():
-            shutil.rmtree(report_path)
-        os.replace(staging, report_path)
-    finally:
-        if staging.exists():
-            shutil.rmtree(staging, ignore_errors=True)
     files = tuple(str(report_path / Path(f).name) for f in report.files)
     return replace(result, report=replace(report, files=files))
 

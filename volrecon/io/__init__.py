@@ -1,6 +1,7 @@
 """Input and output: lazy frame readers, camera corrections, fingerprints, OME-Zarr writing."""
 
 from volrecon.io.correct import FrameCorrection
+from volrecon.io.files import replacing
 from volrecon.io.fingerprint import fingerprint_file, fingerprint_frames, fingerprint_tree
 from volrecon.io.frames import (
     FrameSource,
@@ -13,6 +14,7 @@ from volrecon.io.frames import (
 )
 from volrecon.io.ome_zarr import create_ome_image, ome_image_attributes, volume_chunks
 from volrecon.io.tiff import capture_tifffile_log, read_tiff_stack, tiff_page_problem
+from volrecon.io.zarr_groups import group_attributes
 
 __all__ = [
     "FrameCorrection",
@@ -25,11 +27,13 @@ __all__ = [
     "fingerprint_file",
     "fingerprint_frames",
     "fingerprint_tree",
+    "group_attributes",
     "natural_sort_key",
     "ome_image_attributes",
     "open_frames",
     "read_image",
     "read_tiff_stack",
+    "replacing",
     "tiff_page_problem",
     "volume_chunks",
 ]

@@ -11,14 +11,13 @@ from __future__ import annotations
 import json
 import math
 import os
-import shutil
-import uuid
 from pathlib import Path
 
 import numpy as np
 
 from volrecon.backend import physical_memory_bytes
 from volrecon.errors import ModelStoreError
+from volrecon.io.files import replacing
 from volrecon.models.base import Geometry, PSFModel
 
 __all__ = ["FORMAT_VERSION", "MODEL_ATTRIBUTE", "load_model", "model_kinds", "save_model"]
@@ -58,7 +57,6 @@ def save_model(model: PSFModel, path: str | os.PathLike[str]) -> None:
             f"{target}: exists and is not a volrecon model store; choose another output path"
         )
     target.parent.mkdir(parents=True, exist_ok=True)
-    tmp = target.with_name(f".{target.name}.{uuid.uuid4().hex}.partial")
     g = model.geometry
     attributes = {
         "kind": model.kind,
@@ -71,19 +69,13 @@ def save_model(model: PSFModel, path: str | os.PathLike[str]) -> None:
         "operator_norm_squared": model._norm_cache.get("value"),
         "parameters": model.store_attributes(),
     }
-    try:
+    with replacing(target) as tmp:
         root = zarr.open_group(zarr.storage.LocalStore(tmp), mode="w", zarr_format=3)
         for key, array in model.store_arrays().items():
             array = np.ascontiguousarray(array)
             root.create_array(key, shape=array.shape, dtype=array.dtype, chunks=array.shape,
                               compressors=ZstdCodec(level=3), fill_value=0)[...] = array
         root.attrs[MODEL_ATTRIBUTE] = json.loads(json.dumps(attributes))
-        if target.exists():
-            shutil.rmtree(target)
-        os.replace(tmp, target)
-    finally:
-        if tmp.exists():
-            shutil.rmtree(tmp, ignore_errors=True)
 
 
 def _is_model_store(path: Path) -> bool:

@@ -15,7 +15,6 @@ only when napari displays them, except one frame per output store (see
 
 from __future__ import annotations
 
-import json
 import math
 import os
 import uuid
@@ -25,6 +24,7 @@ from typing import Any, Literal
 import numpy as np
 
 from volrecon.errors import InputFileError, ModelStoreError
+from volrecon.io.zarr_groups import group_attributes
 from volrecon.models.store import MODEL_ATTRIBUTE
 from volrecon.pipeline.store import STATUS_DONE, STORE_ATTRIBUTE
 
@@ -45,15 +45,8 @@ _MODEL_ATTRIBUTE = MODEL_ATTRIBUTE
 
 
 def _group_attributes(path: Path) -> dict[str, Any] | None:
-    """The attributes in ``path/zarr.json`` of a zarr v3 group, or None if it is not one."""
-    try:
-        document = json.loads((path / "zarr.json").read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError, ValueError):
-        return None
-    if not isinstance(document, dict) or document.get("node_type") != "group":
-        return None
-    attributes = document.get("attributes", {})
-    return attributes if isinstance(attributes, dict) else None
+    """The attributes of the zarr v3 group at `path`, or None if it is not one."""
+    return group_attributes(path)
 
 
 def store_kind(path: str | os.PathLike[str]) -> Literal["output", "model"] | None:

@@ -2,9 +2,7 @@
 
 from __future__ import annotations
 
-import contextlib
 import os
-import uuid
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -12,6 +10,7 @@ from typing import Any
 import numpy as np
 
 from volrecon.errors import ConfigError, InputFileError, OutputWriteError, VolreconError
+from volrecon.io.files import replacing
 from volrecon.pipeline.store import DAMAGE_ERRORS, JobStore
 
 __all__ = ["export_tiff", "parse_frame_range"]
@@ -134,12 +133,10 @@ def export_tiff(store_path: str | os.PathLike[str], tiff_path: str | os.PathLike
         metadata["spacing"] = spacing
     # Written beside the target and renamed at the end: an export that fails half-way leaves
     # an existing file of that name as it was.
-    partial = out.with_name(f".{out.name}.{uuid.uuid4().hex}.partial")
     try:
-        with tifffile.TiffWriter(partial, imagej=True) as writer:
+        with replacing(out) as partial, tifffile.TiffWriter(partial, imagej=True) as writer:
             writer.write(planes(), shape=shape, dtype=np.float32,
                          resolution=(1.0 / pixel_x, 1.0 / pixel_y), metadata=metadata)
-        os.replace(partial, out)
     except OSError as exc:
         if isinstance(exc, VolreconError):
             raise
@@ -147,7 +144,4 @@ def export_tiff(store_path: str | os.PathLike[str], tiff_path: str | os.PathLike
             f"--tiff {out}: cannot write the file ({exc.strerror or exc}); choose a path in a "
             "writable folder with enough free space"
         ) from exc
-    finally:
-        with contextlib.suppress(OSError):
-            partial.unlink()
     return out

@@ -17,6 +17,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from volrecon.errors import ConfigError, InputFileError
+from volrecon.io.files import replacing
 
 if TYPE_CHECKING:
     from volrecon.tune.tune import TuneResult
@@ -150,12 +151,10 @@ def write_tuned_job(result: TuneResult, path: str | os.PathLike[str], *,
     if report is not None:
         header.append(f"#   Report: {Path(report)}")
     text = "\n".join(header) + "\n\n" + tomli_w.dumps(document)
-    temporary = out.with_name(f".{out.name}.{os.getpid()}.partial")
     try:
-        temporary.write_text(text, encoding="utf-8")
-        os.replace(temporary, out)
+        with replacing(out) as temporary:
+            temporary.write_text(text, encoding="utf-8")
     except OSError as exc:
-        temporary.unlink(missing_ok=True)
         raise InputFileError(f"{out}: cannot write the tuned job file ({exc.strerror}); "
                              "choose another --out") from exc
     return out

@@ -2,7 +2,8 @@
 
 Each subcommand has one ``_add_<name>`` function that declares its arguments and one
 ``_run_<name>`` function that calls library code. Errors volrecon raises on purpose print as
-one line on stderr with exit status 2; ``--debug`` shows the traceback instead.
+one line on stderr with exit status 2; ``--debug`` shows the traceback instead. volrecon's
+own warnings print once each as ``warning: <message>`` lines on stderr.
 """
 
 from __future__ import annotations
@@ -13,7 +14,7 @@ import sys
 import warnings
 from collections.abc import Callable, Sequence
 
-from volrecon.errors import VolreconError
+from volrecon.errors import VolreconError, VolreconWarning
 
 __all__ = ["main"]
 
@@ -323,6 +324,29 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+class _WarningLines:
+    """Prints volrecon's warnings as ``warning: <message>`` lines on stderr, each text once.
+
+    Only :class:`VolreconWarning` warnings reach the user (e.g. a rank above the usable
+    singular values, an unreliable photon-transfer fit, a store resumed by another volrecon
+    version); other libraries' warnings stay silent (``--debug`` shows them).
+    """
+
+    def __init__(self) -> None:
+        self.seen: set[str] = set()
+
+    def emit(self, message: object) -> None:
+        text = " ".join(str(message).split())
+        if text and text not in self.seen:
+            self.seen.add(text)
+            print(f"warning: {text}", file=sys.stderr)
+
+    def showwarning(self, message: Warning | str, category: type[Warning], filename: str,
+                    lineno: int, file: object = None, line: str | None = None) -> None:
+        if issubclass(category, VolreconWarning):
+            self.emit(message)
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``volrecon`` console script; returns the exit status."""
     parser = build_parser()
@@ -332,13 +356,17 @@ def main(argv: Sequence[str] | None = None) -> int:
     if args.debug:
         return int(args.run(args))
     # Library warnings and log chatter (tifffile logs on truncated files) would bury the one
-    # line that tells the user what to do; --debug shows them.
+    # line that tells the user what to do; --debug shows them. volrecon's own warnings are
+    # printed, once each, as "warning:" lines.
     tifffile_logger = logging.getLogger("tifffile")
     tifffile_level = tifffile_logger.level
     tifffile_logger.setLevel(logging.CRITICAL)
+    lines = _WarningLines()
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
+            warnings.filterwarnings("always", category=VolreconWarning)  # lines dedupes
+            warnings.showwarning = lines.showwarning
             return int(args.run(args))
     except VolreconError as exc:
         message = " ".join(str(exc).split())  # one line, even if a cause spans several

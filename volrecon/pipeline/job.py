@@ -21,6 +21,7 @@ import os
 import platform
 import socket
 import time
+import warnings
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
@@ -35,6 +36,7 @@ from volrecon.errors import (
     ShapeError,
     StoreMismatchError,
     VolreconError,
+    VolreconWarning,
 )
 from volrecon.io.correct import FrameCorrection
 from volrecon.io.fingerprint import fingerprint_file, fingerprint_frames, fingerprint_tree
@@ -355,9 +357,9 @@ def _warn_on_other_version(store: JobStore) -> None:
 
     written_by = store.attributes.get("provenance", {}).get("volrecon_version")
     if written_by != __version__:
-        logger.warning("%s: written by volrecon %s, continued by %s; frames computed now may "
-                       "differ from earlier ones in the last bits", store.path, written_by,
-                       __version__)
+        warnings.warn(f"{store.path}: written by volrecon {written_by}, continued by "
+                      f"{__version__}; frames computed now may differ from earlier ones in "
+                      "the last bits", VolreconWarning, stacklevel=2)
 
 
 def _create_store(prepared: PreparedJob, comparable: dict[str, Any]) -> JobStore:

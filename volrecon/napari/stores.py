@@ -44,17 +44,12 @@ _OUTPUT_ATTRIBUTE = STORE_ATTRIBUTE
 _MODEL_ATTRIBUTE = MODEL_ATTRIBUTE
 
 
-def _group_attributes(path: Path) -> dict[str, Any] | None:
-    """The attributes of the zarr v3 group at `path`, or None if it is not one."""
-    return group_attributes(path)
-
-
 def store_kind(path: str | os.PathLike[str]) -> Literal["output", "model"] | None:
     """Which volrecon store `path` is: ``"output"``, ``"model"`` or None (not ours).
 
     Reads one small metadata file; never raises.
     """
-    attributes = _group_attributes(Path(path))
+    attributes = group_attributes(Path(path))
     if attributes is None:
         return None
     if _OUTPUT_ATTRIBUTE in attributes:
@@ -183,7 +178,7 @@ def output_store_layers(path: str | os.PathLike[str]) -> list[LayerData]:
     """
 
     path = Path(path)
-    attributes = _group_attributes(path)
+    attributes = group_attributes(path)
     if attributes is None or _OUTPUT_ATTRIBUTE not in attributes:
         raise InputFileError(
             f"{path}: not a volrecon output store (no '{_OUTPUT_ATTRIBUTE}' attribute in "
@@ -312,7 +307,7 @@ def model_store_layers(path: str | os.PathLike[str]) -> list[LayerData]:
     import dask.array as da
 
     path = Path(path)
-    attributes = _group_attributes(path)
+    attributes = group_attributes(path)
     info = None if attributes is None else attributes.get(_MODEL_ATTRIBUTE)
     if not isinstance(info, dict):
         raise ModelStoreError(

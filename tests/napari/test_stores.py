@@ -184,6 +184,43 @@ def test_model_store_missing_an_array_is_refused(tmp_path, model_store):
         model_store_layers(model_store)
 
 
+@pytest.mark.parametrize(("edit", "match"), [
+    ("truncate", r"metadata \(zarr\.json\) is damaged \(JSONDecodeError\)"),
+    ("kind", r"'volrecon_model/kind' is \[\], not a name"),
+    ("dtype", r"'volrecon_model/dtype' is 32, not a dtype name"),
+    ("version", r"format_version 2 is not supported"),
+])
+def test_damaged_model_store_is_refused_with_the_reason(model_store, edit, match):
+    meta_file = model_store / "zarr.json"
+    if edit == "truncate":
+        meta_file.write_text(meta_file.read_text()[:-5])
+    else:
+        meta = json.loads(meta_file.read_text())
+        value = {"kind": [], "dtype": 32, "version": 2}[edit]
+        meta["attributes"]["volrecon_model"]["format_version" if edit == "version" else edit] = (
+            value)
+        meta_file.write_text(json.dumps(meta))
+    with pytest.raises(ModelStoreError, match=match):
+        model_store_layers(model_store)
+
+
+def test_output_store_with_damaged_metadata_is_refused_not_ignored(output_store):
+    meta_file = output_store.path / "zarr.json"
+    meta_file.write_text(meta_file.read_text()[:-5])
+    assert store_kind(output_store.path) is None  # the reader probe stays quiet
+    with pytest.raises(InputFileError, match=r"zarr\.json: not readable as zarr v3 group"):
+        output_store_layers(output_store.path)
+
+
+def test_ome_metadata_of_another_version_is_refused(output_store):
+    meta_file = output_store.path / "zarr.json"
+    meta = json.loads(meta_file.read_text())
+    meta["attributes"]["ome"]["version"] = "0.4"
+    meta_file.write_text(json.dumps(meta))
+    with pytest.raises(InputFileError, match=r"'ome/version' is '0\.4', not '0\.5'"):
+        output_store_layers(output_store.path)
+
+
 @pytest.mark.parametrize("damage", ["no_multiscales", "short_scale", "no_image"])
 def test_damaged_output_store_names_the_problem(output_store, damage):
     import shutil

@@ -1,4 +1,5 @@
-"""Input and output: lazy frame readers, camera corrections, fingerprints, OME-Zarr writing."""
+"""Input and output: lazy frame readers, camera corrections, fingerprints, OME-Zarr writing and
+reading, zarr group attributes."""
 
 from volrecon.io.correct import FrameCorrection
 from volrecon.io.files import replacing
@@ -12,13 +13,22 @@ from volrecon.io.frames import (
     open_frames,
     read_image,
 )
-from volrecon.io.ome_zarr import create_ome_image, ome_image_attributes, volume_chunks
+from volrecon.io.ome_zarr import (
+    OmeImage,
+    OmeLevel,
+    create_ome_image,
+    ome_image_attributes,
+    parse_ome_image,
+    volume_chunks,
+)
 from volrecon.io.tiff import capture_tifffile_log, read_tiff_stack, tiff_page_problem
 from volrecon.io.zarr_groups import group_attributes
 
 __all__ = [
     "FrameCorrection",
     "FrameSource",
+    "OmeImage",
+    "OmeLevel",
     "TiffFrames",
     "TiffGlobFrames",
     "ZarrFrames",
@@ -31,6 +41,7 @@ __all__ = [
     "natural_sort_key",
     "ome_image_attributes",
     "open_frames",
+    "parse_ome_image",
     "read_image",
     "read_tiff_stack",
     "replacing",

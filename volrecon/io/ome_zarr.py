@@ -1,20 +1,25 @@
-"""Write 4-D ``(t, z, y, x)`` images as OME-Zarr 0.5 (OME-NGFF 0.5 on zarr v3).
+"""Write 4-D ``(t, z, y, x)`` images as OME-Zarr 0.5 (OME-NGFF 0.5 on zarr v3), and read
+their metadata back.
 
 The metadata is written by hand, as the specification lays it out: the image group's
 attributes hold ``{"ome": {"version": "0.5", "multiscales": [...]}}``, the level array ``"0"``
 carries ``dimension_names`` equal to the axis names, and each level has exactly one ``scale``
-transform with one value per axis (the frame interval included).
+transform with one value per axis (the frame interval included). :func:`parse_ome_image`
+reads any OME-NGFF 0.5 image's first multiscale (several levels, a translation, transforms
+shared by all levels), not only the ones written here.
 """
 
 from __future__ import annotations
 
 import math
 import os
+from collections.abc import Mapping
+from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from volrecon.errors import ConfigError
+from volrecon.errors import ConfigError, InputFileError
 
 if TYPE_CHECKING:
     import zarr
@@ -22,8 +27,11 @@ if TYPE_CHECKING:
 __all__ = [
     "IMAGE_PATH",
     "OME_VERSION",
+    "OmeImage",
+    "OmeLevel",
     "create_ome_image",
     "ome_image_attributes",
+    "parse_ome_image",
     "volume_chunks",
 ]
 
@@ -149,3 +157,205 @@ def create_ome_image(path: str | os.PathLike[str], *, shape_tzyx: tuple[int, int
                        dimension_names=list(AXES_TZYX))
     group.attrs.update({**(attributes or {}), "ome": ome})
     return group
+
+
+# ------------------------------------------------------------------------------------ read
+_BAD_METADATA_FIX = ("the image's OME-NGFF metadata is damaged, write the image again (a "
+                     "job's output store: re-run the job with --restart)")
+
+
+@dataclass(frozen=True)
+class OmeLevel:
+    """One resolution level of an OME-NGFF image.
+
+    Attributes
+    ----------
+    path : str
+        Path of the level's array inside the image group.
+    scale : tuple of float
+        Physical step between neighbouring voxels along each axis, in the axis's unit.
+    translation : tuple of float
+        Physical position of voxel ``(0, …, 0)`` along each axis (zeros when none is given).
+    """
+
+    path: str
+    scale: tuple[float, ...]
+    translation: tuple[float, ...]
+
+
+@dataclass(frozen=True)
+class OmeImage:
+    """The first multiscale of an OME-NGFF 0.5 image, as :func:`parse_ome_image` reads it.
+
+    Attributes
+    ----------
+    name : str or None
+        The multiscale's name, if it has one.
+    axis_names : tuple of str
+        Axis names in array order, e.g. ``("t", "z", "y", "x")``.
+    axis_types : tuple of str or None
+        ``"time"``, ``"space"``, ``"channel"`` or a custom type, per axis (None if not given).
+    axis_units : tuple of str or None
+        UDUNITS-2 unit name per axis (None if not given, as for a channel axis).
+    levels : tuple of OmeLevel
+        Resolution levels, highest resolution first, each with the whole coordinate
+        transform from its voxel indices to physical coordinates.
+    """
+
+    name: str | None
+    axis_names: tuple[str, ...]
+    axis_types: tuple[str | None, ...]
+    axis_units: tuple[str | None, ...]
+    levels: tuple[OmeLevel, ...]
+
+
+def parse_ome_image(attributes: Mapping[str, Any], *, source: str | os.PathLike[str]
+                    ) -> OmeImage:
+    """Read the first multiscale of an OME-NGFF 0.5 image group's attributes.
+
+    Parameters
+    ----------
+    attributes : mapping
+        The image group's attributes (e.g. from :func:`volrecon.io.group_attributes`);
+        the OME metadata is ``attributes["ome"]``.
+    source : str or path
+        Where the attributes come from (the store's path), named in error messages.
+
+    Returns
+    -------
+    OmeImage
+        Axes, and for each level its array path, scale and translation. Transforms given for
+        the whole multiscale are folded into each level's.
+
+    Raises
+    ------
+    InputFileError
+        If there is no ``ome`` attribute, its version is not ``"0.5"``, or ``multiscales``,
+        its axes, datasets or coordinate transforms do not follow the specification: each
+        level (and the multiscale, if it has transforms) needs exactly one ``scale``, then at
+        most one ``translation``, with one finite number per axis.
+
+    Notes
+    -----
+    A level maps voxel index :math:`i` to :math:`x = s_l \\odot i + t_l`, and transforms of
+    the multiscale (:math:`s_m, t_m`) apply after it, so the level's whole transform is
+    :math:`x = (s_m \\odot s_l) \\odot i + (s_m \\odot t_l + t_m)` (element-wise products).
+    Transforms stored in a separate file (``"path"`` instead of values) are not read.
+
+    Examples
+    --------
+    >>> ome = ome_image_attributes(scale_tzyx=(0.5, 2.0, 0.65, 0.65), name="volumes",
+    ...                            translation_tzyx=(0.0, 10.0, 0.0, 0.0))
+    >>> image = parse_ome_image({"ome": ome}, source="volumes.zarr")
+    >>> image.axis_names, image.levels[0].path
+    (('t', 'z', 'y', 'x'), '0')
+    >>> image.levels[0].scale, image.levels[0].translation
+    ((0.5, 2.0, 0.65, 0.65), (0.0, 10.0, 0.0, 0.0))
+    """
+    ome = attributes.get("ome")
+    if not isinstance(ome, Mapping):
+        raise InputFileError(
+            f"{source}: no OME-NGFF metadata (attribute 'ome' is missing or not a table); "
+            f"{_BAD_METADATA_FIX}"
+        )
+    version = ome.get("version")
+    if version != OME_VERSION:
+        raise InputFileError(
+            f"{source}: attribute 'ome/version' is {_shown(version)}, not "
+            f"'{OME_VERSION}'; open it with a reader of that OME-NGFF version, or write it "
+            f"again as OME-NGFF {OME_VERSION}"
+        )
+    multiscales = ome.get("multiscales")
+    if not (isinstance(multiscales, list) and multiscales
+            and isinstance(multiscales[0], Mapping)):
+        raise InputFileError(
+            f"{source}: attribute 'ome/multiscales' is missing or malformed (expected a "
+            f"non-empty list of tables; found {_shown(multiscales)}); {_BAD_METADATA_FIX}"
+        )
+    multiscale = multiscales[0]
+    names, types, units = _axes(multiscale.get("axes"), source)
+    where = "ome/multiscales/0"
+    shared = multiscale.get("coordinateTransformations")
+    shared_scale, shared_translation = ((1.0,) * len(names), (0.0,) * len(names))
+    if shared is not None:
+        shared_scale, shared_translation = _transforms(shared, where, names, source)
+    datasets = multiscale.get("datasets")
+    if not (isinstance(datasets, list) and datasets):
+        raise InputFileError(
+            f"{source}: '{where}/datasets' is missing or malformed (expected a non-empty "
+            f"list; found {_shown(datasets)}); {_BAD_METADATA_FIX}"
+        )
+    levels = []
+    for index, dataset in enumerate(datasets):
+        here = f"{where}/datasets/{index}"
+        path = dataset.get("path") if isinstance(dataset, Mapping) else None
+        if not (isinstance(path, str) and path):
+            raise InputFileError(
+                f"{source}: '{here}' needs a 'path' naming the level's array; found "
+                f"{_shown(dataset)}; {_BAD_METADATA_FIX}"
+            )
+        scale, translation = _transforms(dataset.get("coordinateTransformations"), here,
+                                         names, source)
+        levels.append(OmeLevel(
+            path=path,
+            scale=tuple(m * s for m, s in zip(shared_scale, scale, strict=True)),
+            translation=tuple(m * t + u for m, t, u in zip(shared_scale, translation,
+                                                           shared_translation, strict=True)),
+        ))
+    name = multiscale.get("name")
+    return OmeImage(name=name if isinstance(name, str) else None, axis_names=names,
+                    axis_types=types, axis_units=units, levels=tuple(levels))
+
+
+def _axes(raw: Any, source: str | os.PathLike[str]
+          ) -> tuple[tuple[str, ...], tuple[str | None, ...], tuple[str | None, ...]]:
+    """Names, types and units of ``multiscales[0].axes``."""
+    valid = isinstance(raw, list) and len(raw) > 0 and all(
+        isinstance(axis, Mapping) and isinstance(axis.get("name"), str)
+        and len(axis["name"]) > 0
+        and all(isinstance(axis.get(key), str | None) for key in ("type", "unit"))
+        for axis in raw)
+    names = tuple(str(axis["name"]) for axis in raw) if valid else ()
+    if not valid or len(set(names)) != len(names):
+        raise InputFileError(
+            f"{source}: 'ome/multiscales/0/axes' is missing or malformed (expected a list of "
+            f"tables with distinct names and text types and units; found {_shown(raw)}); "
+            f"{_BAD_METADATA_FIX}"
+        )
+    return (names, tuple(axis.get("type") for axis in raw),
+            tuple(axis.get("unit") for axis in raw))
+
+
+def _transforms(raw: Any, where: str, names: tuple[str, ...],
+                source: str | os.PathLike[str]) -> tuple[tuple[float, ...], tuple[float, ...]]:
+    """(scale, translation) of a ``coordinateTransformations`` list: one scale, then at most
+    one translation, each with one finite number per axis."""
+    n = len(names)
+    found: dict[str, tuple[float, ...]] = {}
+    valid = isinstance(raw, list) and 1 <= len(raw) <= 2
+    for kind, transform in zip(("scale", "translation"), raw if valid else [], strict=False):
+        values = transform.get(kind) if isinstance(transform, Mapping) else None
+        if not (isinstance(transform, Mapping) and transform.get("type") == kind
+                and isinstance(values, list) and len(values) == n
+                and all(_is_finite_number(v) for v in values)):
+            valid = False
+            break
+        found[kind] = tuple(float(v) for v in values)
+    if not valid:
+        raise InputFileError(
+            f"{source}: '{where}/coordinateTransformations' needs one scale, then at most one "
+            f"translation, each with one finite number per axis ({', '.join(names)}); found "
+            f"{_shown(raw)}; {_BAD_METADATA_FIX}"
+        )
+    return found["scale"], found.get("translation", (0.0,) * n)
+
+
+def _is_finite_number(value: Any) -> bool:
+    return (isinstance(value, int | float) and not isinstance(value, bool)
+            and math.isfinite(value))
+
+
+def _shown(value: Any, limit: int = 80) -> str:
+    """A short one-line ``repr`` of a metadata value for an error message."""
+    text = " ".join(repr(value).split())
+    return text if len(text) <= limit else text[:limit] + "…"

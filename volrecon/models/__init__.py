@@ -4,7 +4,7 @@ from volrecon.models.base import Geometry, PSFModel
 from volrecon.models.depth_convolution import DepthConvolutionPSF
 from volrecon.models.field_varying import FieldVaryingPSF, interpolation_weights
 from volrecon.models.low_rank import LowRankDepthPSF
-from volrecon.models.store import load_model, save_model
+from volrecon.models.store import StoredModel, load_model, open_model_store, save_model
 
 __all__ = [
     "DepthConvolutionPSF",
@@ -12,7 +12,9 @@ __all__ = [
     "Geometry",
     "LowRankDepthPSF",
     "PSFModel",
+    "StoredModel",
     "interpolation_weights",
     "load_model",
+    "open_model_store",
     "save_model",
 ]

@@ -15,7 +15,6 @@ only when napari displays them, except one frame per output store (see
 
 from __future__ import annotations
 
-import math
 import os
 import uuid
 from pathlib import Path
@@ -24,8 +23,9 @@ from typing import Any, Literal
 import numpy as np
 
 from volrecon.errors import InputFileError, ModelStoreError
+from volrecon.io.ome_zarr import parse_ome_image
 from volrecon.io.zarr_groups import group_attributes
-from volrecon.models.store import MODEL_ATTRIBUTE
+from volrecon.models.store import MODEL_ATTRIBUTE, open_model_store
 from volrecon.pipeline.store import STATUS_DONE, STORE_ATTRIBUTE
 
 __all__ = [
@@ -47,9 +47,12 @@ _MODEL_ATTRIBUTE = MODEL_ATTRIBUTE
 def store_kind(path: str | os.PathLike[str]) -> Literal["output", "model"] | None:
     """Which volrecon store `path` is: ``"output"``, ``"model"`` or None (not ours).
 
-    Reads one small metadata file; never raises.
+    Reads one small metadata file; never raises (a damaged one gives None).
     """
-    attributes = group_attributes(Path(path))
+    try:
+        attributes = group_attributes(Path(path))
+    except InputFileError:
+        return None
     if attributes is None:
         return None
     if _OUTPUT_ATTRIBUTE in attributes:
@@ -90,37 +93,6 @@ def _open_group(path: Path) -> Any:
     import zarr
 
     return zarr.open_group(zarr.storage.LocalStore(path, read_only=True), mode="r")
-
-
-def _ome_geometry(path: Path, attributes: dict[str, Any]
-                  ) -> tuple[str, list[str], list[str], list[float], list[float], str]:
-    """(level path, axis names, units, scale, translation, image name) of the first level."""
-    try:
-        multiscale = attributes["ome"]["multiscales"][0]
-        axes = multiscale["axes"]
-        dataset = multiscale["datasets"][0]
-        names = [str(a["name"]) for a in axes]
-        units = [str(a.get("unit", "")) for a in axes]
-        scale: list[float] | None = None
-        translation = [0.0] * len(axes)
-        for transform in dataset.get("coordinateTransformations", []):
-            if transform.get("type") == "scale":
-                scale = [float(s) for s in transform["scale"]]
-            elif transform.get("type") == "translation":
-                translation = [float(v) for v in transform["translation"]]
-        level = str(dataset["path"])
-        name = str(multiscale.get("name", path.stem))
-    except (KeyError, IndexError, TypeError, ValueError) as exc:
-        raise InputFileError(
-            f"{path}: attribute 'ome/multiscales' is missing or malformed ({exc!r}); the store "
-            "is not OME-NGFF 0.5 as volrecon writes it, re-run the job with --restart"
-        ) from exc
-    if scale is None or len(scale) != len(names) or len(translation) != len(names):
-        raise InputFileError(
-            f"{path}: 'ome/multiscales/0/datasets/0' needs one scale (and translation) value "
-            f"per axis {names}; re-run the job with --restart"
-        )
-    return level, names, units, scale, translation, name
 
 
 def _frame_for_contrast(status: np.ndarray | None) -> int | None:
@@ -168,7 +140,8 @@ def output_store_layers(path: str | os.PathLike[str]) -> list[LayerData]:
     Raises
     ------
     InputFileError
-        If `path` is not an output store or its OME metadata is malformed.
+        If `path` is not an output store, its ``zarr.json`` is damaged, or its OME metadata
+        is malformed.
 
     Notes
     -----
@@ -184,7 +157,12 @@ def output_store_layers(path: str | os.PathLike[str]) -> list[LayerData]:
             f"{path}: not a volrecon output store (no '{_OUTPUT_ATTRIBUTE}' attribute in "
             "zarr.json); give the [output] path of a job"
         )
-    level, names, units, scale, translation, name = _ome_geometry(path, attributes)
+    ome = parse_ome_image(attributes, source=path)
+    level = ome.levels[0].path
+    names = list(ome.axis_names)
+    units = [unit or "" for unit in ome.axis_units]
+    scale, translation = list(ome.levels[0].scale), list(ome.levels[0].translation)
+    name = ome.name or path.stem
     group = _open_group(path)
     try:
         image = group[level]
@@ -302,66 +280,41 @@ def model_store_layers(path: str | os.PathLike[str]) -> list[LayerData]:
     Raises
     ------
     ModelStoreError
-        If `path` is not a model store, or lacks an array its kind needs.
+        If `path` is not a model store (see :func:`volrecon.models.open_model_store`), is of a
+        kind this viewer cannot show, or lacks an array its kind needs.
     """
     import dask.array as da
 
-    path = Path(path)
-    attributes = group_attributes(path)
-    info = None if attributes is None else attributes.get(_MODEL_ATTRIBUTE)
-    if not isinstance(info, dict):
-        raise ModelStoreError(
-            f"{path}: no '{_MODEL_ATTRIBUTE}' attribute in zarr.json, so not a volrecon PSF "
-            "model; pass a directory written by 'volrecon calibrate' or PSFModel.save"
-        )
-    try:
-        depth_step = float(info["depth_step_um"])
-        pixel = float(info["pixel_size_um"])
-        depth_start = float(info.get("depth_start_um", 0.0))
-        kind = str(info["kind"])
-    except (KeyError, TypeError, ValueError) as exc:
-        raise ModelStoreError(
-            f"{path}: attribute '{_MODEL_ATTRIBUTE}' lacks a valid {exc!r}; re-run calibration"
-        ) from exc
-    if not all(math.isfinite(v) for v in (depth_step, pixel, depth_start)):
-        raise ModelStoreError(f"{path}: model geometry is not finite; re-run calibration")
-    group = _open_group(path)
-
-    def array(key: str) -> Any:
-        try:
-            return _lazy(group[key])
-        except KeyError as exc:
-            raise ModelStoreError(
-                f"{path}: {kind} model store lacks array '{key}'; the store is incomplete, "
-                "re-run calibration"
-            ) from exc
-
+    stored = open_model_store(path)
+    stem, array = stored.path.stem, stored.lazy_array
+    depth_step, pixel = stored.geometry.depth_step_um, stored.geometry.pixel_size_um
+    depth_start = stored.geometry.depth_start_um
     space = ["micrometer"] * 3
     zyx = {"scale": [depth_step, pixel, pixel], "translate": [depth_start, 0.0, 0.0],
            "axis_labels": ["z", "y", "x"], "units": space}
-    metadata = {"volrecon_store": os.fspath(path.resolve()), "volrecon_kind": "model",
-                "volrecon_model": info}
+    metadata = {"volrecon_store": os.fspath(stored.path.resolve()), "volrecon_kind": "model",
+                "volrecon_model": stored.attributes}
     common = {"colormap": "inferno", "metadata": metadata}
-    if kind == "depth-convolution":
-        return [(array("psf"), {"name": f"{path.stem} PSF", **zyx, **common}, "image")]
-    if kind == "depth-low-rank":
+    if stored.kind == "depth-convolution":
+        return [(array("psf"), {"name": f"{stem} PSF", **zyx, **common}, "image")]
+    if stored.kind == "depth-low-rank":
         kernels, weights = array("kernels"), array("weights")
         stack = _expand_low_rank(weights, kernels)
         return [
-            (stack, {"name": f"{path.stem} PSF", **zyx, **common}, "image"),
-            (kernels, {"name": f"{path.stem} kernels", "scale": [1.0, pixel, pixel],
+            (stack, {"name": f"{stem} PSF", **zyx, **common}, "image"),
+            (kernels, {"name": f"{stem} kernels", "scale": [1.0, pixel, pixel],
                        "axis_labels": ["kernel", "y", "x"],
                        "units": ["dimensionless", *space[1:]],
                        "visible": False, **common}, "image"),
         ]
-    if kind == "field-varying":
+    if stored.kind == "field-varying":
         kernels = array("kernels")  # (Z, K, Y, X)
         return [(da.moveaxis(kernels, 1, 0), {
-            "name": f"{path.stem} PSF per field position", "scale": [1.0, depth_step, pixel, pixel],
+            "name": f"{stem} PSF per field position", "scale": [1.0, depth_step, pixel, pixel],
             "translate": [0.0, depth_start, 0.0, 0.0],
             "axis_labels": ["field position", "z", "y", "x"], "units": ["dimensionless", *space],
             **common}, "image")]
     raise ModelStoreError(
-        f"{path}: attribute '{_MODEL_ATTRIBUTE}/kind' is {kind!r}, which this viewer cannot "
-        "show; known kinds: depth-convolution, depth-low-rank, field-varying"
+        f"{stored.path}: attribute '{_MODEL_ATTRIBUTE}/kind' is {stored.kind!r}, which this "
+        "viewer cannot show; known kinds: depth-convolution, depth-low-rank, field-varying"
     )

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import json
 import math
 import os
 import time
@@ -13,6 +12,7 @@ from typing import Any
 import numpy as np
 
 from volrecon.errors import InputFileError
+from volrecon.io.zarr_groups import group_attributes
 from volrecon.pipeline.lock import StoreLock, read_lock
 from volrecon.pipeline.store import (
     STATUS_FAILED,
@@ -94,8 +94,9 @@ def store_status(path: str | os.PathLike[str]) -> StoreStatus:
     except InputFileError:
         if not creation_interrupted(path):
             raise
-        # Killed while creating the store: nothing is done yet.
-        attributes = json.loads((path / "zarr.json").read_text())["attributes"][STORE_ATTRIBUTE]
+        # Killed while creating the store: nothing is done yet. (creation_interrupted found
+        # the attribute to be a table.)
+        attributes = (group_attributes(path) or {}).get(STORE_ATTRIBUTE, {})
         total = int(attributes.get("video", {}).get("n_frames", 0))
         return StoreStatus(path=path, total=total, done=0, failed=0, running=running,
                            holder=holder)

@@ -38,6 +38,7 @@ import numpy as np
 
 from volrecon.errors import ConfigError, InputFileError, StoreMismatchError
 from volrecon.io.ome_zarr import IMAGE_PATH, create_ome_image
+from volrecon.io.zarr_groups import group_attributes
 
 __all__ = [
     "DIAGNOSTICS",
@@ -113,24 +114,27 @@ class FrameRecords:
     failures: dict[int, str] = field(default_factory=dict)
 
 
-def is_job_store(path: str | os.PathLike[str]) -> bool:
-    """True when `path` is a zarr group written by a volrecon job (complete or not)."""
-    meta = Path(path) / "zarr.json"
+def _readable_attributes(path: str | os.PathLike[str]) -> dict[str, Any]:
+    """The attributes of the group at `path`; empty if it is none or its metadata is damaged
+    (nothing then shows that the folder is a job's store)."""
     try:
-        document = json.loads(meta.read_text(encoding="utf-8"))
-    except (OSError, json.JSONDecodeError):
-        return False
-    return STORE_ATTRIBUTE in document.get("attributes", {})
+        return group_attributes(path) or {}
+    except InputFileError:
+        return {}
+
+
+def is_job_store(path: str | os.PathLike[str]) -> bool:
+    """True when `path` is a zarr group written by a volrecon job (complete or not).
+
+    False for a group whose ``zarr.json`` is damaged: nothing shows it is a job's store.
+    """
+    return STORE_ATTRIBUTE in _readable_attributes(path)
 
 
 def creation_interrupted(path: str | os.PathLike[str]) -> bool:
     """True when `path` is a volrecon output store whose creation never finished."""
-    try:
-        document = json.loads((Path(path) / "zarr.json").read_text(encoding="utf-8"))
-        attributes = document["attributes"][STORE_ATTRIBUTE]
-        return bool(attributes["state"] != "ready")
-    except (OSError, ValueError, KeyError, TypeError):
-        return False
+    attribute = _readable_attributes(path).get(STORE_ATTRIBUTE)
+    return isinstance(attribute, dict) and "state" in attribute and attribute["state"] != "ready"
 
 
 def is_vacant(path: str | os.PathLike[str]) -> bool:
@@ -241,25 +245,25 @@ class JobStore:
         Raises
         ------
         InputFileError
-            If `path` is not a volrecon output store or its creation was interrupted.
+            If `path` is not a volrecon output store, its metadata is damaged, it is of
+            another format version, or its creation was interrupted.
         """
         import zarr
 
         path = Path(path)
-        if not is_job_store(path):
+        try:
+            group_attrs = group_attributes(path)
+        except InputFileError as exc:
+            raise InputFileError(
+                f"{path}: the store's metadata (zarr.json) is damaged "
+                f"({type(exc.__cause__).__name__}); {_DAMAGED_FIX}"
+            ) from exc
+        if group_attrs is None or STORE_ATTRIBUTE not in group_attrs:
             raise InputFileError(
                 f"{path}: not a volrecon output store (no '{STORE_ATTRIBUTE}' attribute); give "
                 "the [output] path of a job"
             )
-        try:
-            group: Any = zarr.open_group(zarr.storage.LocalStore(path, read_only=mode == "r"),
-                                         mode=mode)
-            attributes = group.attrs[STORE_ATTRIBUTE]
-        except DAMAGE_ERRORS as exc:
-            raise InputFileError(
-                f"{path}: the store's metadata (zarr.json) is damaged ({type(exc).__name__}); "
-                f"{_DAMAGED_FIX}"
-            ) from exc
+        attributes = group_attrs[STORE_ATTRIBUTE]
         if not isinstance(attributes, dict):
             raise InputFileError(
                 f"{path}: attribute '{STORE_ATTRIBUTE}' is not a table; {_DAMAGED_FIX}")
@@ -272,6 +276,7 @@ class JobStore:
             raise InputFileError(
                 f"{path}: the store's creation was interrupted; run the job again to create it"
             )
+        group = zarr.open_group(zarr.storage.LocalStore(path, read_only=mode == "r"), mode=mode)
         return cls(path, group)
 
     @staticmethod

@@ -11,6 +11,7 @@ import numpy as np
 
 from volrecon.errors import ConfigError, InputFileError, OutputWriteError, VolreconError
 from volrecon.io.files import replacing
+from volrecon.io.ome_zarr import parse_ome_image
 from volrecon.pipeline.store import DAMAGE_ERRORS, JobStore
 
 __all__ = ["export_tiff", "parse_frame_range"]
@@ -90,9 +91,8 @@ def export_tiff(store_path: str | os.PathLike[str], tiff_path: str | os.PathLike
     store = JobStore.open(store_path, mode="r")
     image = store.image
     selected = parse_frame_range(frames, store.n_frames)
-    scale = store.group.attrs["ome"]["multiscales"][0]["datasets"][0][
-        "coordinateTransformations"][0]["scale"]
-    finterval, spacing, pixel_y, pixel_x = (float(s) for s in scale)
+    scale = parse_ome_image(store.group.attrs.asdict(), source=store_path).levels[0].scale
+    finterval, spacing, pixel_y, pixel_x = scale
     _, nz, ny, nx = image.shape
     n_out = selected.stop - selected.start
     projected = projection is not None

@@ -2,16 +2,15 @@
 
 from __future__ import annotations
 
-import cvxpy as cp
 import numpy as np
 import pytest
-import scipy.sparse as sp
+from convex_reference import cvxpy_optimum, textbook_forward, textbook_objective
 from skimage.restoration import richardson_lucy
 
 import volrecon
 from volrecon.errors import ConfigError, DataError, ShapeError
 from volrecon.models import PSFModel
-from volrecon.solvers import SolverState, objective, tv_value
+from volrecon.solvers import SolverState, objective
 
 
 def _gaussian_psf(rng, nz, n, *, spots=3):
@@ -26,97 +25,78 @@ def _gaussian_psf(rng, nz, n, *, spots=3):
     return psf / psf.sum(axis=(1, 2), keepdims=True)
 
 
-def _dense_operator(psf):
-    """Explicit matrix of Σ_z h_z ⊛ v_z with the centre convention, built by index arithmetic
-    (independent of the FFT code under test)."""
-    nz, ny, nx = psf.shape
-    cy, cx = ny // 2, nx // 2
-    rows, cols, vals = [], [], []
-    for z in range(nz):
-        for yp in range(ny):
-            for xp in range(nx):
-                col = (z * ny + yp) * nx + xp
-                for y in range(ny):
-                    ky = y - yp + cy
-                    if not 0 <= ky < ny:
-                        continue
-                    for x in range(nx):
-                        kx = x - xp + cx
-                        if 0 <= kx < nx and psf[z, ky, kx] != 0:
-                            rows.append(y * nx + x)
-                            cols.append(col)
-                            vals.append(psf[z, ky, kx])
-    return sp.csr_matrix((vals, (rows, cols)), shape=(ny * nx, nz * ny * nx))
-
-
-def _tv_operators(nz, ny, nx, z_weight):
-    """Sparse forward differences of the TV definition: zero-extended by one pixel laterally
-    with periodic wrap (Dirichlet ends), Neumann along depth; as documented in solvers.tv."""
-
-    def periodic(n):
-        return sp.diags([-np.ones(n), np.ones(n - 1)], [0, 1], shape=(n, n)).tolil()
-
-    py, px = ny + 1, nx + 1
-    dy = periodic(py)
-    dy[py - 1, 0] = 1
-    dx = periodic(px)
-    dx[px - 1, 0] = 1
-    dz = sp.diags([-np.ones(nz), np.ones(nz - 1)], [0, 1], shape=(nz, nz)).tolil()
-    dz[nz - 1, nz - 1] = 0
-    eye = sp.identity
-    d_y = sp.kron(sp.kron(eye(nz), dy.tocsr()), eye(px))
-    d_x = sp.kron(sp.kron(eye(nz), eye(py)), dx.tocsr())
-    d_z = z_weight * sp.kron(sp.kron(dz.tocsr(), eye(py)), eye(px))
-    # embedding of the field into the padded grid
-    keep = np.zeros((nz, py, px), bool)
-    keep[:, :ny, :nx] = True
-    embed = sp.identity(nz * py * px, format="csr")[:, keep.ravel()]
-    return [d @ embed for d in (d_y, d_x, d_z)]
-
-
-def _cvxpy_optimum(psf, frame, *, tv, l1, z_weight=1.0):
-    nz, ny, nx = psf.shape
-    a = _dense_operator(psf)
-    v = cp.Variable(nz * ny * nx, nonneg=True)
-    cost = 0.5 * cp.sum_squares(a @ v - frame.ravel()) + l1 * cp.sum(v)
-    if tv:
-        g = [d @ v for d in _tv_operators(nz, ny, nx, z_weight)]
-        cost += tv * cp.sum(cp.norm(cp.vstack(g), 2, axis=0))
-    problem = cp.Problem(cp.Minimize(cost))
-    problem.solve(solver=cp.CLARABEL)
-    return problem.value, v.value.reshape(nz, ny, nx)
-
-
-@pytest.fixture(scope="module")
-def small_problem():
-    rng = np.random.default_rng(7)
-    nz, n = 3, 12
+def _problem(nz, *, seed=7, n=12):
+    """A tiny problem: multi-spot PSF, three unit beads (all in plane 0 when Z = 1), noise."""
+    rng = np.random.default_rng(seed)
     psf = _gaussian_psf(rng, nz, n)
     truth = np.zeros((nz, n, n))
-    truth[0, 4, 5] = truth[1, 7, 8] = truth[2, 6, 3] = 1.0
+    for z, y, x in ((0, 4, 5), (1, 7, 8), (2, 6, 3)):
+        truth[min(z, nz - 1), y, x] = 1.0
     model = PSFModel.from_stack(psf, 2.0, 1.0)
     frame = model.forward(truth.astype(np.float32)) + 0.002 * rng.standard_normal((n, n))
     return psf, model, frame.astype(np.float32)
 
 
+@pytest.fixture(scope="module")
+def small_problem():
+    return _problem(3)
+
+
+@pytest.fixture(scope="module")
+def optima():
+    """cvxpy optima of the convex cases, solved once per case for both solvers."""
+    cache = {}
+
+    def solve(nz, tv, l1, z_weight):
+        key = (nz, tv, l1, z_weight)
+        if key not in cache:
+            psf, model, frame = _problem(nz)
+            cache[key] = (model, frame, cvxpy_optimum(psf, frame, tv=tv, l1=l1,
+                                                      z_weight=z_weight))
+        return cache[key]
+
+    return solve
+
+
 @pytest.mark.parametrize("method", ["admm", "fista"])
-@pytest.mark.parametrize("tv, l1", [(0.0, 2e-3), (2e-3, 0.0)])
-def test_objective_matches_cvxpy(small_problem, method, tv, l1):
-    psf, model, frame = small_problem
-    # Reference: cvxpy (Clarabel interior point) on the same problem written independently.
-    optimum, _ = _cvxpy_optimum(psf, frame.astype(np.float64), tv=tv, l1=l1)
-    _, info = volrecon.reconstruct(frame, model, method=method, iterations=3000, tv=tv, l1=l1,
-                                   tol=1e-7, return_info=True)
-    # The issue's bound: converged objective within 1e-3 (relative) of the optimum.
-    assert abs(info.objective - optimum) / optimum < 1e-3
+@pytest.mark.parametrize(("nz", "tv", "l1", "z_weight"), [
+    (3, 0.0, 2e-3, 1.0),
+    (3, 2e-3, 0.0, 1.0),
+    (3, 2e-3, 2e-3, 1.0),
+    (3, 2e-3, 1e-3, 0.4),
+    (1, 2e-3, 2e-3, 1.0),
+    (1, 2e-3, 0.0, 3.0),
+], ids=["l1", "tv", "tv+l1", "tv+l1-z-weight-0.4", "Z1-tv+l1", "Z1-tv-z-weight-3"])
+def test_objective_matches_cvxpy(optima, method, nz, tv, l1, z_weight):
+    # Reference: cvxpy (Clarabel interior point) on the same problem written independently
+    # (dense A by index arithmetic, sparse TV differences); the solver's volume is scored
+    # with those matrices, not with volrecon's objective.
+    model, frame, (optimum, _, cost) = optima(nz, tv, l1, z_weight)
+    volume, info = volrecon.reconstruct(frame, model, method=method, iterations=1000, tv=tv,
+                                        l1=l1, tol=1e-6, tv_z_weight=z_weight,
+                                        return_info=True)
+    gap = (cost(volume) - optimum) / optimum
+    # Measured relative gaps after at most 1000 iterations: ≤ 1.3e-6 (ADMM), ≤ 5e-7 (FISTA),
+    # down to -5e-7 where Clarabel's own tolerance shows. 1e-4 leaves a margin of 75, is ten
+    # times stricter than the issue's 1e-3, and fails a solver that ignores tv_z_weight
+    # (gap 2e-2), squares it (4e-3) or drops l1 (1e-2).
+    assert -1e-5 < gap < 1e-4, gap
+    # The reported objective is the cost of the returned float32 volume.
+    assert info.objective == pytest.approx(cost(volume), rel=1e-5)
 
 
-def test_tv_value_matches_sparse_definition(rng):
-    v = rng.random((3, 5, 6))
-    d = _tv_operators(3, 5, 6, 0.7)
-    g = np.stack([di @ v.ravel() for di in d])
-    # Reference: the sparse-matrix TV used for the cvxpy problems.
-    np.testing.assert_allclose(tv_value(v, 0.7), np.sqrt((g**2).sum(0)).sum(), rtol=1e-10)
+@pytest.mark.parametrize(("nz", "n"), [(1, 13), (3, 14)])
+def test_objective_matches_textbook_formula(rng, nz, n):
+    psf = _gaussian_psf(rng, nz, n)
+    model = PSFModel.from_stack(psf, 2.0, 1.0, dtype=np.float64)
+    volume = rng.random((nz, n, n)) ** 4
+    frame = rng.random((n, n))
+    for tv, l1, z_weight in ((0.0, 0.0, 1.0), (0.3, 0.0, 1.0), (0.2, 0.05, 0.5), (0.0, 0.1, 1.0)):
+        # Reference: ½‖Av − b‖² + l1·‖v‖₁ + tv·TV(v) from the definitions with numpy, A by
+        # scipy.signal.fftconvolve; float64 throughout, so agreement to rounding.
+        expected = textbook_objective(volume, frame, psf, tv=tv, l1=l1, z_weight=z_weight)
+        got = objective(volume, frame, model, tv=tv, l1=l1, tv_z_weight=z_weight)
+        assert got == pytest.approx(expected, rel=1e-10), (tv, l1, z_weight)
 
 
 def test_richardson_lucy_matches_skimage(rng):
@@ -152,21 +132,63 @@ def _speckle_psf(rng, nz, n):
     return psf / psf.sum(axis=(1, 2), keepdims=True)
 
 
-@pytest.mark.parametrize("method", ["admm", "fista", "rl"])
-def test_bead_volume_recovered(rng, method):
+BEADS = [(0, 10, 12), (2, 30, 20), (3, 20, 36), (5, 38, 38), (7, 12, 30), (6, 24, 24)]
+#: Largest relative volume error ‖v − v_true‖ / ‖v_true‖ of a recovered bead volume.
+#: Measured on four seeds: converged solvers 0.010 (ADMM), 0.019 (RL), 0.04 to 0.07 (FISTA);
+#: the back-projection Aᵀb and one iteration of FISTA or RL 0.995 or more even at their best
+#: scale. 0.25 sits between with a margin of 3.5 below and 4 above.
+BEAD_ERROR_LIMIT = 0.25
+
+
+@pytest.fixture(scope="module")
+def bead_problem():
+    """Six unit beads in 8 planes of 48 x 48 behind a speckle PSF, 0.2 % noise (fixed seed)."""
+    rng = np.random.default_rng(20261201)
     nz, n = 8, 48
     model = PSFModel.from_stack(_speckle_psf(rng, nz, n), 2.0, 1.0)
-    beads = [(0, 10, 12), (2, 30, 20), (3, 20, 36), (5, 38, 38), (7, 12, 30), (6, 24, 24)]
     truth = np.zeros((nz, n, n), np.float32)
-    for z, y, x in beads:
+    for z, y, x in BEADS:
         truth[z, y, x] = 1.0
     frame = model.forward(truth)
     frame += 0.002 * frame.max() * rng.standard_normal(frame.shape).astype(np.float32)
+    return model, truth, frame
+
+
+def _relative_error(volume, truth, *, best_scale=False):
+    """‖s·v − v_true‖ / ‖v_true‖ with s = 1, or the least-squares s = <v, v_true> / ‖v‖²."""
+    v, t = volume.astype(np.float64).ravel(), truth.astype(np.float64).ravel()
+    s = float(v @ t) / float(v @ v) if best_scale else 1.0
+    return float(np.linalg.norm(s * v - t) / np.linalg.norm(t))
+
+
+@pytest.mark.parametrize("method", ["admm", "fista", "rl"])
+def test_bead_volume_recovered(bead_problem, method):
+    model, truth, frame = bead_problem
     volume = volrecon.reconstruct(frame, model, method=method, iterations=300, l1=1e-4)
-    for z, y, x in beads:
+    # Known synthetic truth: the volume itself, to BEAD_ERROR_LIMIT ...
+    error = _relative_error(volume, truth)
+    assert error < BEAD_ERROR_LIMIT, (method, error)
+    # ... and every bead found within ±1 plane (the issue's criterion).
+    for z, y, x in BEADS:
         profile = volume[:, y - 1 : y + 2, x - 1 : x + 2].max(axis=(1, 2))
-        # Known synthetic truth: every bead found within ±1 plane (the issue's criterion).
         assert abs(int(profile.argmax()) - z) <= 1, (method, z, y, x, profile.round(3))
+
+
+def test_bead_criterion_rejects_unconverged_volumes(bead_problem):
+    model, truth, frame = bead_problem
+    candidates = {
+        "back-projection": model.adjoint(frame),
+        "fista, 1 iteration": volrecon.reconstruct(frame, model, method="fista", iterations=1,
+                                                   l1=1e-4),
+        "rl, 1 iteration": volrecon.reconstruct(frame, model, method="rl", iterations=1,
+                                                l1=1e-4),
+    }
+    for name, volume in candidates.items():
+        # The criterion of test_bead_volume_recovered can fail: these are blurred copies of
+        # the truth (their depth peaks still sit near the beads), and even scaled as well as
+        # possible they miss the known volume by more than the limit (measured ≥ 0.995).
+        error = _relative_error(volume, truth, best_scale=True)
+        assert error > BEAD_ERROR_LIMIT, (name, error)
 
 
 def test_warm_start_reuses_state(small_problem):
@@ -182,16 +204,18 @@ def test_warm_start_reuses_state(small_problem):
 
 
 def test_info_diagnostics(small_problem):
-    _, model, frame = small_problem
+    psf, model, frame = small_problem
     volume, info = volrecon.reconstruct(frame, model, method="fista", iterations=50, l1=1e-3,
-                                        return_info=True)
+                                        tv=1e-3, tv_z_weight=0.5, return_info=True)
     assert volume.dtype == np.float32 and volume.shape == model.shape_in and volume.min() >= 0
     assert info.iterations == 50 and not info.converged and info.seconds > 0
-    # Reference: the objective and residual recomputed from their definitions.
-    a_v = model.forward(volume).astype(np.float64)
-    np.testing.assert_allclose(info.residual, np.linalg.norm(a_v - frame) / np.linalg.norm(frame),
+    # Reference: the residual and the objective from their definitions with numpy, A by
+    # scipy.signal.fftconvolve; the float32 forward model inside agrees to ~1e-6.
+    residual = textbook_forward(volume, psf) - frame
+    np.testing.assert_allclose(info.residual, np.linalg.norm(residual) / np.linalg.norm(frame),
                                rtol=1e-5)
-    np.testing.assert_allclose(info.objective, objective(volume, frame, model, l1=1e-3), rtol=1e-9)
+    expected = textbook_objective(volume, frame, psf, tv=1e-3, l1=1e-3, z_weight=0.5)
+    np.testing.assert_allclose(info.objective, expected, rtol=1e-5)
 
 
 def test_frame_not_modified(small_problem):

@@ -43,7 +43,7 @@ DEFAULT_JOB: dict[str, Any] = {
     "model": {"path": "model"},
     "video": {"path": "raw.tif", "dark": "dark.tif"},
     "solver": {"method": "admm", "iterations": 8, "tv": 1e-3, "tol": 0.0,
-               "warm_start": True, "warm_start_frames": 3},
+               "warm_start": True, "chain_frames": 3, "lead_in_frames": 1},
     "output": {"path": "out.zarr", "time_interval_s": 0.05},
     "compute": {"scheduler": "threads", "workers": 2, "frames_per_task": 3},
 }
@@ -86,6 +86,28 @@ def make_job_files(folder: Path, rng: np.random.Generator) -> JobFiles:
     tifffile.imwrite(folder / "dark.tif", dark, photometric="minisblack")
     return JobFiles(folder=folder, model=volrecon.PSFModel.load(folder / "model"),
                     raw=raw, dark=dark)
+
+
+def chain_reference(frames: np.ndarray, model: volrecon.PSFModel, solver: dict[str, Any], *,
+                    chain: int, lead_in: int, failed: frozenset[int] = frozenset(),
+                    ) -> dict[int, np.ndarray]:
+    """The job's rule written out with volrecon.reconstruct alone: chains ``[c, c + chain)``
+    each solved from scratch ``lead_in`` frames before ``c`` (never before frame 0), warm
+    start from the previous frame, a fresh start after a failed frame; frames in `failed`
+    (non-finite input) are skipped. Returns the stored frames of every chain."""
+    volumes: dict[int, np.ndarray] = {}
+    for c in range(0, len(frames), chain):
+        state = None
+        for t in range(max(0, c - lead_in), min(c + chain, len(frames))):
+            if t in failed:
+                state = None
+                continue
+            volume, info = volrecon.reconstruct(frames[t], model, init=state, return_info=True,
+                                                **solver)
+            state = info.state
+            if t >= c:
+                volumes[t] = volume
+    return volumes
 
 
 def read_volumes(store: Path) -> np.ndarray:

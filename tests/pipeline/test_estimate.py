@@ -19,9 +19,13 @@ def test_estimate_writes_nothing_and_predicts_size(job_files, capsys):
     assert re.search(rf"whole job: {N_FRAMES} frames in about \d+ (s|min)", text)
     assert sorted(p.name for p in job_files.folder.iterdir()) == before  # nothing written
     estimate = estimate_job(load_job(job_path))
-    assert estimate.sampled == 3 and estimate.parallel_frames == 2
-    # Textbook arithmetic: the duration is frames × seconds per frame / frames at once.
-    assert abs(estimate.seconds - N_FRAMES * estimate.seconds_per_frame / 2) < 1e-9
+    assert estimate.sampled == 5 and estimate.parallel_frames == 2
+    # Counted by hand from the job's layout (12 frames, chains of 3 after a lead-in of 1):
+    # chain [0, 3) solves 3 frames, [3, 6), [6, 9) and [9, 12) solve 4 each: 4 cold starts and
+    # 11 warm frames, shared by 2 workers.
+    by_hand = (4 * estimate.cold_seconds + 11 * estimate.warm_seconds) / 2
+    assert abs(estimate.seconds - by_hand) < 1e-9 * by_hand
+    assert re.search(r"one hour of 30 fps video \(108000 frames\) .* about \d+", text)
     run_job(load_job(job_path))
     chunks = sum(p.stat().st_size for p in (job_files.folder / "out.zarr" / "0" / "c").rglob("*")
                  if p.is_file())

@@ -29,7 +29,7 @@ def test_paths_relative_to_job_file_and_defaults(job_files, tmp_path, monkeypatc
     assert job.solver.iterations == job_schema()["properties"]["solver"]["properties"][
         "iterations"]["default"]
     assert job.solver.tv == 0.0 and job.compute.device == "cpu" and job.binning == 1
-    assert "compute" not in job.settings() and job.settings()["solver"]["iterations"] == 60
+    assert "compute" not in job.settings() and job.settings()["solver"]["iterations"] == "auto"
 
 
 def test_settings_compare_fingerprints_not_spelling(job_files):
@@ -46,9 +46,12 @@ def test_settings_compare_fingerprints_not_spelling(job_files):
     ({"solver": {"iterationz": 3}}, r"unknown key 'solver\.iterationz'"),
     ({"extra": {"a": 1}}, r"unknown key 'extra'"),
     ({"compute": {"gpu": True}}, r"unknown key 'compute\.gpu'"),
-    ({"solver": {"iterations": "sixty"}}, r"key 'solver\.iterations' must be of type integer"),
+    ({"solver": {"iterations": "sixty"}},
+     r"key 'solver\.iterations' must be an integer of at least 1 or \"auto\"; got 'sixty'"),
+    ({"solver": {"tv": "much"}}, r"key 'solver\.tv' must be of type number"),
     ({"solver": {"warm_start": 1}}, r"key 'solver\.warm_start' must be of type boolean"),
-    ({"solver": {"iterations": 0}}, r"key 'solver\.iterations'.*minimum"),
+    ({"solver": {"iterations": 0}},
+     r"key 'solver\.iterations' must be an integer of at least 1.*got 0"),
     ({"solver": {"method": "cg"}}, r"key 'solver\.method'"),
     ({"output": {"time_interval_s": None}}, r"required key 'output\.time_interval_s'"),
     ({"compute": {"scheduler": "mpi"}}, r"compute\.scheduler.*tcp://host:port"),

@@ -41,7 +41,7 @@ def slow_job(tmp_path, rng) -> Path:
         "model": {"path": "model"},
         "video": {"path": "raw.tif"},
         "solver": {"method": "admm", "iterations": 120, "tv": 1e-3, "tol": 0.0,
-                   "warm_start_frames": 2},
+                   "chain_frames": 2},
         "output": {"path": "out.zarr", "time_interval_s": 0.1, "max_projections": True},
         "compute": {"scheduler": "threads", "workers": 2, "frames_per_task": 4},
     }

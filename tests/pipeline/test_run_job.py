@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 import tifffile
 import zarr
-from jobdata import N_FRAMES, assert_bit_identical, read_store_arrays, read_volumes
+from jobdata import N_FRAMES, assert_bit_identical, chain_reference, read_store_arrays, read_volumes
 from ome_zarr.io import parse_url
 from ome_zarr.reader import Reader
 from ome_zarr_models.v05 import Image
@@ -28,19 +28,6 @@ from volrecon.pipeline import JobStore, StoreLock, load_job, run_job, store_stat
 from volrecon.pipeline.store import STATUS_DONE, STATUS_FAILED, STATUS_PENDING
 
 
-def _chain_reference(frames: np.ndarray, model, solver: dict, chain: int) -> np.ndarray:
-    """Reconstruct with volrecon.reconstruct directly: chains of `chain` frames, warm start."""
-    volumes, state = [], None
-    for t, frame in enumerate(frames):
-        if t % chain == 0:
-            state = None
-        volume, info = volrecon.reconstruct(frame, model, init=state, return_info=True,
-                                            **solver)
-        state = info.state
-        volumes.append(volume)
-    return np.stack(volumes)
-
-
 def test_store_equals_direct_solver_calls_and_is_valid_ome_zarr(job_files):
     job = load_job(job_files.write_job(output={"max_projections": True}))
     result = run_job(job)
@@ -48,10 +35,11 @@ def test_store_equals_direct_solver_calls_and_is_valid_ome_zarr(job_files):
     store = job.output_path
     volumes = read_volumes(store)
     # Reference: the solver called frame by frame on the dark-subtracted frames, warm-started
-    # in chains of warm_start_frames = 3; the pipeline must add no maths of its own.
+    # in chains of chain_frames = 3 with lead_in_frames = 1; the pipeline adds no maths.
     frames = job_files.raw.astype(np.float32) - job_files.dark.astype(np.float32)
     solver = {"method": "admm", "iterations": 8, "tv": 1e-3, "tol": 0.0}
-    expected = _chain_reference(frames, job_files.model, solver, chain=3)
+    reference = chain_reference(frames, job_files.model, solver, chain=3, lead_in=1)
+    expected = np.stack([reference[t] for t in range(len(frames))])
     np.testing.assert_array_equal(volumes, expected)
     # Published standard: OME-NGFF 0.5 (ome-zarr-models), and ome-zarr-py's reader.
     image = Image.from_zarr(zarr.open_group(store, mode="r"))
@@ -82,7 +70,7 @@ def test_store_equals_direct_solver_calls_and_is_valid_ome_zarr(job_files):
 
 
 def test_second_run_computes_nothing_and_partial_resume_is_bit_identical(job_files):
-    job = load_job(job_files.write_job(solver={"warm_start_frames": 4},
+    job = load_job(job_files.write_job(solver={"chain_frames": 4},
                                        compute={"frames_per_task": 8}))
     run_job(job)
     reference = read_store_arrays(job.output_path)

@@ -71,7 +71,7 @@ def test_many_waves_same_result(job_files, monkeypatch):
                                                 "frames_per_task": 12}))
     run_job(job)
     reference = read_store_arrays(job.output_path)
-    # Tasks hold whole chains of warm_start_frames = 3: 4 tasks, here in 2 waves of 2.
+    # Tasks hold whole chains of chain_frames = 3: 4 tasks, here in 2 waves of 2.
     monkeypatch.setattr(execute, "WAVE_TASKS_PER_WORKER", 1)
     events = []
     run_job(job.with_compute(scheduler="threads", workers=2, frames_per_task=1), restart=True,

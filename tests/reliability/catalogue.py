@@ -129,10 +129,10 @@ def _(files: JobFiles) -> list[str]:
     return _run(files, "section.toml", extra={"x": 1})
 
 
-@case("wrong_type", 'wrong type (`iterations = "many"`)', "run", "solver.iterations",
-      "must be of type integer")
+@case("wrong_type", 'wrong type (`tv = "much"`)', "run", "solver.tv",
+      "must be of type number")
 def _(files: JobFiles) -> list[str]:
-    return _run(files, "type.toml", solver={"iterations": "many"})
+    return _run(files, "type.toml", solver={"tv": "much"})
 
 
 @case("missing_key", "required key missing (`[output] time_interval_s`)", "run",
@@ -142,7 +142,7 @@ def _(files: JobFiles) -> list[str]:
 
 
 @case("zero_iterations", "value out of range (`iterations = 0`)", "run",
-      "solver.iterations", "minimum of 1", "fix the job file")
+      "solver.iterations", "at least 1 or \"auto\"", "fix the job file")
 def _(files: JobFiles) -> list[str]:
     return _run(files, "range.toml", solver={"iterations": 0})
 

@@ -49,7 +49,7 @@ def crash_job(tmp_path_factory) -> dict:
         "model": {"path": "model"},
         "video": {"path": "raw.tif"},
         "solver": {"method": "admm", "iterations": 40, "tv": 1e-3, "tol": 0.0,
-                   "warm_start_frames": 2},
+                   "chain_frames": 2},
         "output": {"path": "reference.zarr", "time_interval_s": 0.1, "max_projections": True},
         "compute": {"scheduler": "synchronous", "frames_per_task": 2},
     }

@@ -110,7 +110,7 @@ def test_damaged_tiffs_refused_cleanly(base, edits):
 VALID_JOB = {
     "model": {"path": "model"},
     "video": {"path": "raw.tif", "dark": "dark.tif", "frames": [0, 4], "binning": 1},
-    "solver": {"method": "admm", "iterations": 10, "tv": 1e-3, "warm_start_frames": 2},
+    "solver": {"method": "admm", "iterations": 10, "tv": 1e-3, "chain_frames": 2},
     "output": {"path": "out.zarr", "time_interval_s": 0.05, "max_projections": True},
     "compute": {"scheduler": "threads", "workers": 2, "frames_per_task": 4},
 }

@@ -6,32 +6,15 @@ from __future__ import annotations
 import numpy as np
 import tifffile
 import zarr
+from jobdata import chain_reference
 from reliability_tools import one_error_line
 
-import volrecon
 from volrecon.cli import main
 from volrecon.pipeline.store import STATUS_DONE, STATUS_FAILED
 
 SOLVER = {"method": "admm", "iterations": 8, "tv": 1e-3, "tol": 0.0}
 BAD_INPUT = "the corrected frame contains NaN or Inf pixels"
 DIVERGED = "diverged: the volume or objective is NaN or Inf"
-
-
-def _reference(frames: np.ndarray, model: volrecon.PSFModel, failed: set[int],
-               chain: int) -> dict[int, np.ndarray]:
-    """Frames reconstructed by volrecon.reconstruct as the job file's settings say: chains
-    of `chain` frames warm-started from the previous frame, restarted after a failed frame."""
-    volumes, state = {}, None
-    for t, frame in enumerate(frames):
-        if t % chain == 0 or t - 1 in failed:
-            state = None
-        if t in failed:
-            continue
-        volume, info = volrecon.reconstruct(frame, model, init=state, return_info=True,
-                                            **SOLVER)
-        state = info.state
-        volumes[t] = volume
-    return volumes
 
 
 def test_bad_frames_marked_failed_and_the_job_goes_on(job_copy, capsys):
@@ -71,7 +54,8 @@ def test_bad_frames_marked_failed_and_the_job_goes_on(job_copy, capsys):
             assert np.isnan(volumes[t]).all() and np.isnan(group["projections/max_z"][t]).all()
     # Every other frame is exactly what the solver gives (reference: volrecon.reconstruct
     # called frame by frame with the job's chain rule), so a failure disturbs nothing else.
-    expected = _reference(frames, job_copy.model, failed, chain=3)  # warm_start_frames
+    expected = chain_reference(frames, job_copy.model, SOLVER, chain=3, lead_in=1,
+                               failed=frozenset(failed))  # the job's chain_frames, lead_in_frames
     for t, volume in expected.items():
         np.testing.assert_array_equal(volumes[t], volume, err_msg=f"frame {t}")
     # The diverged frame's diagnostics are kept (they show what happened); the bad-input

@@ -51,10 +51,12 @@ def test_w_step(rng, steps, use_tv):
     out = []
     for s in steps:
         m, w, rhs = wmg.copy(), previous.copy(), np.empty_like(v)
-        change = s.w_step(v, m, rhs if use_tv else None, ymb if use_tv else None, w, 0.3, 1.8,
-                          2.0, 3.0, 0.5, (7, 6), compare=True)
-        # Definition: the change is ‖w − previous w‖², taken before the buffer is overwritten.
+        change, norm = s.w_step(v, m, rhs if use_tv else None, ymb if use_tv else None, w,
+                                0.3, 1.8, 2.0, 3.0, 0.5, (7, 6), compare=True)
+        # Definition: the change is ‖w − previous w‖², taken before the buffer is overwritten,
+        # beside ‖w‖² of the new w.
         np.testing.assert_allclose(change, float(((w - previous) ** 2).sum()), rtol=1e-5)
+        np.testing.assert_allclose(norm, float((w**2).sum()), rtol=1e-5)
         out.append((m, w, rhs))
     for got, want in zip(out[1][: 3 if use_tv else 2], out[0], strict=False):
         np.testing.assert_allclose(got, want, atol=1e-5)

@@ -18,7 +18,7 @@ from volrecon.tune.criteria import blurred_relative_change, choose_cell, stabili
 from volrecon.tune.execute import run_calls
 from volrecon.tune.iterations import candidate_counts, chain_error
 from volrecon.tune.noise import FrameNoise, PhotonTransfer
-from volrecon.tune.reference import register_translation, registered_correlation
+from volrecon.tune.reference import estimate_volume_shift, registered_correlation
 from volrecon.tune.sites import Site, choose_site_frames
 from volrecon.tune.solve import solve_chain, solve_site
 from volrecon.tune.sweep import FINE_STEP, fine_grid, weight_unit
@@ -159,7 +159,7 @@ def test_registration_matches_scikit_image(rng: np.random.Generator, shift):
         volume[rng.integers(3, 9), rng.integers(8, 32), rng.integers(8, 32)] = 1.0
     volume = gaussian_filter(volume, 1.2)
     moved = nd_shift(volume, shift, order=3, mode="constant")
-    ours = np.array(register_translation(moved, volume))
+    ours = np.array(estimate_volume_shift(volume, moved))
     # Reference: skimage.registration.phase_cross_correlation (upsampled DFT,
     # Guizar-Sicairos 2008) at 1/20 voxel, and the known shift. The parabola through the
     # peak is good to ~0.1 voxel on blobs of this size.
@@ -174,7 +174,7 @@ def test_registration_matches_scikit_image(rng: np.random.Generator, shift):
 
 def test_registration_errors(rng: np.random.Generator):
     with pytest.raises(ShapeError, match="of one shape"):
-        register_translation(rng.random((2, 4, 4)), rng.random((2, 4, 5)))
+        estimate_volume_shift(rng.random((2, 4, 4)), rng.random((2, 4, 5)))
     with pytest.raises(DataError, match="constant"):
         registered_correlation(rng.random((2, 4, 4)), np.ones((2, 4, 4)))
 

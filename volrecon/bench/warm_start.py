@@ -50,7 +50,7 @@ def run(*, n_frames: int = 6, method: str = "admm", tol: float = 1e-3, tv: float
         frames, model = _demo_frames(Path(tmp), n_frames)
     model = model.on_device("cpu", threads=threads)
     settings = SolverSettings(method=method, iterations=max_iterations, tol=tol, tv=tv, l1=l1,
-                              warm_start_frames=len(frames))
+                              chain_frames=len(frames))
     cold = [_iterations(solve_frame(frame, model, settings)) for frame in frames]
     warm = [_iterations(result) for result in solve_chain(frames, model, settings)]
     ratio = float(np.mean(cold[1:]) / np.mean(warm[1:]))

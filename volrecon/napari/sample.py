@@ -87,7 +87,7 @@ def hydrogel_sample(*, n_frames: int = 12, n_planes: int = 12, iterations: int =
     # Counts -> photons: E[y] = offset + K (η μ_p + μ_d); the dark mean holds offset + K μ_d.
     counts_per_photon = camera.gain_adu_per_electron * camera.quantum_efficiency
     photons = ((video - dark) / counts_per_photon).astype(np.float32)
-    settings = SolverSettings(method="admm", iterations=iterations, warm_start_frames=n_frames)
+    settings = SolverSettings(method="admm", iterations=iterations, chain_frames=n_frames)
     volumes = np.full((n_frames, *model.shape_in), np.nan, dtype=np.float32)
     for t, result in enumerate(solve_chain(photons, model, settings)):
         if result.volume is not None:

@@ -284,6 +284,9 @@ def _validate(document: Any, source: str) -> None:
         raise ConfigError(
             f"{source}: key '{where}' must be of type {expected}; got {error.instance!r}"
         )
+    if error.validator == "anyOf" and where == "solver.iterations":
+        raise ConfigError(f"{source}: key 'solver.iterations' must be an integer of at least 1 "
+                          f"or \"auto\"; got {error.instance!r}; fix the job file")
     if error.validator == "pattern" and where == "compute.scheduler":
         raise ConfigError(
             f"{source}: key 'compute.scheduler' is {error.instance!r}; use threads, processes, "

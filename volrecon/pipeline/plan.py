@@ -16,7 +16,7 @@ __all__ = ["chains_per_task", "plan_tasks"]
 def chains_per_task(frames_per_task: int, chain_frames: int) -> int:
     """Whole chains per task: ``frames_per_task`` rounded up to a multiple of the chain."""
     if frames_per_task < 1 or chain_frames < 1:
-        raise ConfigError(f"frames_per_task ({frames_per_task}) and warm_start_frames "
+        raise ConfigError(f"frames_per_task ({frames_per_task}) and chain_frames "
                           f"({chain_frames}) must be at least 1")
     return max(1, math.ceil(frames_per_task / chain_frames))
 

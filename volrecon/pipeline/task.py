@@ -105,9 +105,11 @@ def _load_model(path: str, fingerprint: str, device: str, threads: int) -> PSFMo
 def run_task(context: TaskContext, spec: TaskSpec) -> FrameRecords:
     """Reconstruct and write frames ``spec.start:spec.stop``; return their diagnostics.
 
-    Each chain of ``context.solver.chain_frames`` frames starts from scratch at its first
-    frame and warm-starts every later frame from the previous one, so a frame's result depends
-    only on its chain, never on task size, scheduler or interruptions. A frame that fails (its
+    Each chain of ``context.solver.chain_frames`` frames starts from scratch
+    ``lead_in_frames`` before its first frame (never before the job's first frame; the lead-in
+    frames are solved, not stored) and warm-starts every later frame from the previous one, so
+    a frame's result depends only on its chain, never on task size, scheduler or
+    interruptions. A frame that fails (its
     input is not finite, the solver refuses it, the result is not finite or its residual
     exceeds ``max_residual``) is written as NaN, recorded with its reason, and the chain
     restarts at the next frame (:func:`volrecon.solvers.solve_chain`).
@@ -134,12 +136,15 @@ def run_task(context: TaskContext, spec: TaskSpec) -> FrameRecords:
     failures: dict[int, str] = {}
     for chain_start in range(spec.start, spec.stop, solver.chain_frames):
         chain_stop = min(chain_start + solver.chain_frames, spec.stop)
-        raw = context.source.read(context.first_frame + chain_start,
+        solve_start = solver.chain_span(chain_start)
+        raw = context.source.read(context.first_frame + solve_start,
                                   context.first_frame + chain_stop)
         frames = context.correction.apply(raw)
         del raw
         for offset, result in enumerate(solve_chain(frames, model, solver)):
-            t = chain_start + offset
+            t = solve_start + offset
+            if t < chain_start:  # lead-in: only its state goes on
+                continue
             i = t - spec.start
             if result.volume is not None:
                 volume = result.volume

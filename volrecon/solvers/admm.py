@@ -58,6 +58,7 @@ import numpy as np
 
 from volrecon.solvers.admm_steps import steps_for
 from volrecon.solvers.info import SolverState
+from volrecon.solvers.norms import squared_norm
 
 if TYPE_CHECKING:
     from volrecon._typing import Array
@@ -130,35 +131,37 @@ def _forward_padded(p: _Problem, v: Array, planes: int = 8) -> Array:
 
 
 def _norm(xp: Any, a: Array) -> float:
-    return math.sqrt(float(xp.vdot(a.ravel(), a.ravel()).real))
+    return math.sqrt(squared_norm(a))
 
 
 def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1: float,
                tol: float, tv_z_weight: float, init: Array | SolverState | None,
-               check_every: int = 5, compiled: bool | None = None,
+               stop_change: float = 0.0, check_every: int = 5, compiled: bool | None = None,
                ) -> tuple[Array, int, bool, SolverState, dict[str, list[float]]]:
     """Run ADMM on one frame; returns (volume on the sensor grid, iterations, converged,
     state for a warm start, history). `frame` and `init` are already on the model's backend.
-    `compiled` picks the step implementation (default: numba on the CPU, arrays on the GPU)."""
+
+    Stops when the normalised residuals meet `tol` (checked every `check_every` iterations)
+    or, with ``stop_change > 0``, after the first iteration from the third on whose relative
+    change of the volume ``c_k = ‖w_k − w_{k−1}‖ / ‖w_k‖`` is at most `stop_change` and
+    smaller than ``c_{k−1}`` (measured in the fused w-step, so at no extra pass). `compiled`
+    picks the step implementation (default: numba on the CPU, arrays on the GPU)."""
     p = _Problem(model, frame, tv)
     be, xp = p.be, p.xp
     steps = steps_for(be, compiled=compiled)
     shape, dt = p.shape, p.dtype
     nz, ny, nx = p.nz, p.ny, p.nx
-    wz = tv_z_weight
     sensor = p.sensor
 
     mean_gain = float(p.sum_abs2.mean())
     scale = mean_gain if mean_gain > 0 else 1.0
     mu = [INITIAL_MU1, INITIAL_MU2 * scale if p.use_tv else 0.0, INITIAL_MU3 * scale]
     # Implicit scaled duals: wmg = v − γ and ymb = ∇v − β (see admm_steps).
-    v = xp.zeros((nz, *shape), dtype=dt)
-    alpha = xp.zeros(shape, dtype=dt)
     gamma: Any = None
     beta: Any = None
     if isinstance(init, SolverState):
-        v[...] = init.arrays["v"]
-        alpha[...] = init.arrays["alpha"]
+        v = init.arrays["v"].astype(dt, copy=True)
+        alpha = init.arrays["alpha"].astype(dt, copy=True)
         gamma = init.arrays["gamma"]
         beta = init.arrays.get("beta") if p.use_tv else None
         mu = list(init.penalties)
@@ -166,29 +169,43 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
             mu[1] = 0.0
         elif mu[1] == 0.0:
             mu[1] = scale
-    elif init is not None:
-        v[:, :ny, :nx] = init
+    else:
+        v = xp.zeros((nz, *shape), dtype=dt)
+        alpha = xp.zeros(shape, dtype=dt)
+        if init is not None:
+            v[:, :ny, :nx] = init
     wmg = v.copy() if gamma is None else v - gamma
     ymb: Any = None
     if p.use_tv:
         ymb = xp.zeros((3, *v.shape), dtype=dt) if beta is None else beta.astype(dt, copy=True)
-        steps.gradient_minus(v, ymb, wz)
+        steps.gradient_minus(v, ymb, tv_z_weight)
     del gamma, beta
 
-    mv = _forward_padded(p, v) if init is not None else xp.zeros(shape, dtype=dt)
+    # M v of the start: carried in the state of the frame before (it is the last Mv of that
+    # solve's loop), computed for a plain volume, zero for a cold start.
+    if isinstance(init, SolverState) and "mv" in init.arrays:
+        mv = init.arrays["mv"]  # never written in place: the state stays reusable
+    elif init is not None:
+        mv = _forward_padded(p, v)
+    else:
+        mv = xp.zeros(shape, dtype=dt)
     rhs: Any = xp.empty_like(v) if p.use_tv else None
     # w of the iteration before a check, then of the check itself (one buffer: the w-step
     # returns ‖w − w_prev‖² before overwriting); ρ·y of the same two iterations, by parity
-    w = xp.zeros_like(v)
-    y_saved: list[Any] = [xp.zeros_like(ymb), xp.zeros_like(ymb)] if p.use_tv else [None, None]
+    # Only a check at the first iteration reads a "previous" w or y never written (as zero).
+    fresh = xp.zeros_like if iterations == 1 or check_every == 1 else xp.empty_like
+    w = fresh(v)
+    y_saved: list[Any] = [fresh(ymb), fresh(ymb)] if p.use_tv else [None, None]
     x_denominator = xp.full(shape, 1.0 / mu[0], dtype=dt)
     x_denominator[sensor] = 1.0 / (1.0 + mu[0])
-    x = xp.empty(shape, dtype=dt)
+    x = xp.zeros(shape, dtype=dt)  # read as the previous x by a check at iteration 1
     x_old = xp.empty(shape, dtype=dt)
     x_minus_alpha = xp.empty(shape, dtype=dt)  # relaxed x minus α; then α = Mv − this
     rho = RELAXATION
+    track = stop_change > 0  # compare w with the previous iterate every iteration
+    last_change = math.inf
     history: dict[str, list[float]] = {"iteration": [], "primal": [], "dual": [],
-                                       "mu1": [], "mu2": [], "mu3": []}
+                                       "mu1": [], "mu2": [], "mu3": [], "change": []}
     converged = False
     it = 0
     for it in range(1, iterations + 1):
@@ -205,10 +222,16 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
         # y-update: group shrinkage, folded into the implicit dual ymb
         if p.use_tv:
             steps.tv_dual_step(v, ymb, None if slot is None else y_saved[slot], tv / mu[1],
-                               rho, wz)
+                               rho, tv_z_weight)
         # w-update and the spatial right-hand side μ₃(ŵ − γ) + μ₂∇ᵀ(ŷ − β)
-        w_change = steps.w_step(v, wmg, rhs, ymb, None if slot is None else w, l1 / mu[2],
-                                rho, mu[1], mu[2], wz, (ny, nx), compare=check)
+        w_change, w_energy = steps.w_step(
+            v, wmg, rhs, ymb, w if track or slot is not None else None, l1 / mu[2], rho,
+            mu[1], mu[2], tv_z_weight, (ny, nx), compare=check or track)
+        change = math.sqrt(w_change / max(w_energy, 1e-30)) if track else math.inf
+        # Settled: small and falling. After a warm start the change first grows for several
+        # iterations while the new frame's data spreads through the splits.
+        settled = it > 2 and change <= stop_change and change < last_change
+        last_change = change if it > 1 else math.inf  # iteration 1 compares a stale buffer
         # relaxed x̂ = ρx + (1 − ρ)Mv, minus α
         xp.multiply(mv, 1 - rho, out=x_minus_alpha)
         x_minus_alpha += rho * x
@@ -218,13 +241,16 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
         x_hat = be.rfft2(x_minus_alpha, shape)
         x_hat *= mu[0]
         mv_hat = steps.volume_solve(r_hat, p.h, x_hat, p.lateral, 1.0 if p.use_tv else mu[2],
-                                    mu[0], mu[1], mu[2], mu[1] * wz * wz)
+                                    mu[0], mu[1], mu[2], mu[1] * tv_z_weight * tv_z_weight)
         v = None  # released before the inverse transform allocates the new volume
         v = be.irfft2(r_hat, shape, overwrite=True).astype(dt, copy=False)
         del r_hat
         mv = be.irfft2(mv_hat, shape).astype(dt, copy=False)
         xp.subtract(mv, x_minus_alpha, out=alpha)
         if not check:
+            if settled:
+                converged = True
+                break
             continue
         # residuals, normalised (Wohlberg 2017 §II); y is stored as ρ·y
         vw, vv, ww, gg = steps.w_norms(v, w, wmg)
@@ -236,7 +262,7 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
         dual_ref = [mu[0] * p.norm_mt(be.rfft2(alpha, shape)), mu[2] * math.sqrt(gg)]
         if p.use_tv:
             gy, g2, y2, dy, db = steps.tv_norms(v, y_saved[it % 2], y_saved[(it - 1) % 2], ymb,
-                                                  wz, rho)
+                                                  tv_z_weight, rho)
             rs.append(math.sqrt(gy))
             ss.append(mu[1] * math.sqrt(dy))
             primal_ref.append(math.sqrt(max(g2, y2)))
@@ -247,9 +273,10 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
         history["iteration"].append(it)
         history["primal"].append(primal)
         history["dual"].append(dual)
+        history["change"].append(math.sqrt(w_change / max(w_energy, tiny)))
         for k in range(3):
             history[f"mu{k + 1}"].append(mu[k])
-        if primal < tol and dual < tol:
+        if (primal < tol and dual < tol) or settled:
             converged = True
             break
         if it == iterations:
@@ -274,17 +301,17 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
                 wmg *= factor
                 wmg += (1 - factor) * v
             else:  # ymb → β, scale, → ymb
-                steps.gradient_minus(v, ymb, wz)
+                steps.gradient_minus(v, ymb, tv_z_weight)
                 ymb *= factor
-                steps.gradient_minus(v, ymb, wz)
+                steps.gradient_minus(v, ymb, tv_z_weight)
         if changed:
             x_denominator[...] = 1.0 / mu[0]
             x_denominator[sensor] = 1.0 / (1.0 + mu[0])
 
     xp.subtract(v, wmg, out=wmg)  # wmg is not needed any more: it becomes γ
-    arrays = {"v": v, "alpha": alpha, "gamma": wmg}
+    arrays = {"v": v, "alpha": alpha, "gamma": wmg, "mv": mv}
     if p.use_tv:
-        steps.gradient_minus(v, ymb, wz)  # ymb is not needed any more: it becomes β
+        steps.gradient_minus(v, ymb, tv_z_weight)  # ymb is not needed any more: it becomes β
         arrays["beta"] = ymb
     state = SolverState("admm", arrays, tuple(mu))
     # The returned volume is the feasible split w (≥ 0, zero off the field).

@@ -113,11 +113,14 @@ def w_update(v, wmg, rhs, ymb, use_tv, w_out, save, compare, change, thresh, rho
                 mr[j] = keep * vr[j] - (vr[j] - mr[j]) + rho * w[j]
             if save:
                 wo = w_out[z, i]
-                if compare:  # Σ(w − previous w)², then overwrite
+                if compare:  # Σ(w − previous w)² and Σw², then overwrite
                     s = _ZERO
+                    q = _ZERO
                     for j in range(nx):
                         s += (w[j] - wo[j]) * (w[j] - wo[j])
-                    change[z] += s
+                        q += w[j] * w[j]
+                    change[z, 0] += s
+                    change[z, 1] += q
                 for j in range(nx):
                     wo[j] = w[j]
             if use_tv:

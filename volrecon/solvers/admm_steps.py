@@ -26,6 +26,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from volrecon.solvers.norms import squared_norm
 from volrecon.solvers.tv import gradient, gradient_adjoint
 
 if TYPE_CHECKING:
@@ -52,10 +53,10 @@ class ArraySteps:
         self.xp = backend.xp
 
     def tv_dual_step(self, v: Array, ymb: Array, y_out: Array | None, kappa: float, rho: float,
-                     wz: float) -> None:
+                     tv_z_weight: float) -> None:
         """``y = ρ·shrink(∇v + β, κ)``, ``ymb ← ymb − ρ∇v + y`` (β = ∇v − ymb); y into `y_out`."""
         xp = self.xp
-        g = gradient(v, wz)
+        g = gradient(v, tv_z_weight)
         u = 2 * g - ymb
         norm = xp.sqrt((u * u).sum(axis=0))
         factor = rho * (1 - kappa / xp.maximum(norm, kappa))
@@ -67,10 +68,12 @@ class ArraySteps:
 
     def w_step(self, v: Array, wmg: Array, rhs: Array | None, ymb: Array | None,
                w_out: Array | None, thresh: float, rho: float, mu2: float, mu3: float,
-               wz: float, support_yx: tuple[int, int], *, compare: bool = False) -> float:
+               tv_z_weight: float, support_yx: tuple[int, int], *, compare: bool = False,
+               ) -> tuple[float, float]:
         """``w = Π_{support,≥0}(v + γ − thresh)``, ``wmg ← (1−ρ)v − γ + ρw``, and with TV
-        ``rhs = μ₃·wmg + μ₂∇ᵀymb``; w into `w_out`. With `compare`, returns ``‖w − w_out‖²``
-        taken before `w_out` is overwritten (one buffer serves both iterates); else 0."""
+        ``rhs = μ₃·wmg + μ₂∇ᵀymb``; w into `w_out`. With `compare`, returns
+        ``(‖w − w_out‖², ‖w‖²)`` with `w_out` taken before it is overwritten (one buffer serves
+        both iterates); else ``(0, 0)``."""
         xp = self.xp
         ny, nx = support_yx
         gamma = v - wmg
@@ -81,11 +84,11 @@ class ArraySteps:
         w[:, :ny, nx:] = 0
         wmg[...] = (1 - rho) * v - gamma + rho * w
         if rhs is not None and ymb is not None:
-            rhs[...] = mu3 * wmg + mu2 * gradient_adjoint(ymb, wz)
-        change = 0.0
+            rhs[...] = mu3 * wmg + mu2 * gradient_adjoint(ymb, tv_z_weight)
+        change = (0.0, 0.0)
         if w_out is not None:
             if compare:
-                change = self._sq(w - w_out)
+                change = (self._sq(w - w_out), self._sq(w))
             w_out[...] = w
         return change
 
@@ -121,25 +124,25 @@ class ArraySteps:
         r[...] = u - (mu1 * mv) * p
         return mv.astype(r.dtype)
 
-    def gradient_minus(self, v: Array, p: Array, wz: float) -> None:
+    def gradient_minus(self, v: Array, p: Array, tv_z_weight: float) -> None:
         """``p ← ∇v − p``: ymb from β, and β from ymb."""
         p *= -1
-        p += gradient(v, wz)
+        p += gradient(v, tv_z_weight)
 
     def w_norms(self, v: Array, w: Array, wmg: Array) -> tuple[float, ...]:
         """Squared norms ``(‖v−w‖², ‖v‖², ‖w‖², ‖γ‖²)`` with γ = v − wmg."""
         return tuple(self._sq(x) for x in (v - w, v, w, v - wmg))
 
-    def tv_norms(self, v: Array, y: Array, y_prev: Array, ymb: Array, wz: float,
+    def tv_norms(self, v: Array, y: Array, y_prev: Array, ymb: Array, tv_z_weight: float,
                  rho: float) -> tuple[float, ...]:
         """Squared ``(‖∇v − y/ρ‖², ‖∇v‖², ‖y/ρ‖², ‖∇ᵀ(y − y_prev)/ρ‖², ‖∇ᵀβ‖²)``."""
-        g = gradient(v, wz)
+        g = gradient(v, tv_z_weight)
         return (self._sq(g - y / rho), self._sq(g), self._sq(y / rho),
-                self._sq(gradient_adjoint((y - y_prev) / rho, wz)),
-                self._sq(gradient_adjoint(g - ymb, wz)))
+                self._sq(gradient_adjoint((y - y_prev) / rho, tv_z_weight)),
+                self._sq(gradient_adjoint(g - ymb, tv_z_weight)))
 
     def _sq(self, a: Array) -> float:
-        return float(self.xp.vdot(a.ravel(), a.ravel()).real)
+        return squared_norm(a)
 
 
 class CompiledSteps(ArraySteps):
@@ -161,25 +164,27 @@ class CompiledSteps(ArraySteps):
             f.result()
 
     def tv_dual_step(self, v: Array, ymb: Array, y_out: Array | None, kappa: float, rho: float,
-                     wz: float) -> None:
+                     tv_z_weight: float) -> None:
         k = _kernels()
         save = y_out is not None
         self._split(k.tv_dual, v.shape[0], v, ymb, y_out if save else _DUMMY4, save,
-                    np.float32(kappa), np.float32(rho), np.float32(wz))
+                    np.float32(kappa), np.float32(rho), np.float32(tv_z_weight))
 
     def w_step(self, v: Array, wmg: Array, rhs: Array | None, ymb: Array | None,
                w_out: Array | None, thresh: float, rho: float, mu2: float, mu3: float,
-               wz: float, support_yx: tuple[int, int], *, compare: bool = False) -> float:
+               tv_z_weight: float, support_yx: tuple[int, int], *, compare: bool = False,
+               ) -> tuple[float, float]:
         k = _kernels()
         use_tv = rhs is not None and ymb is not None
-        partial = np.zeros(v.shape[0])
+        partial = np.zeros((v.shape[0], 2))
         self._split(k.w_update, v.shape[0], v, wmg, rhs if use_tv else _DUMMY3,
                     ymb if use_tv else _DUMMY4, use_tv,
                     w_out if w_out is not None else _DUMMY3, w_out is not None,
                     compare and w_out is not None, partial,
                     np.float32(thresh), np.float32(rho), np.float32(mu2), np.float32(mu3),
-                    np.float32(wz), support_yx[0], support_yx[1])
-        return float(partial.sum())
+                    np.float32(tv_z_weight), support_yx[0], support_yx[1])
+        change, norm = partial.sum(axis=0, dtype=np.float64)
+        return float(change), float(norm)
 
     def volume_solve(self, r: Array, h: Array, xh: Array, lateral: Array | None, scale: float,
                      mu1: float, mu2: float, mu3: float, e: float) -> Array:
@@ -192,18 +197,18 @@ class CompiledSteps(ArraySteps):
                     _real_view(mv))
         return mv
 
-    def gradient_minus(self, v: Array, p: Array, wz: float) -> None:
-        self._split(_kernels().gradient_minus, v.shape[0], v, p, np.float32(wz))
+    def gradient_minus(self, v: Array, p: Array, tv_z_weight: float) -> None:
+        self._split(_kernels().gradient_minus, v.shape[0], v, p, np.float32(tv_z_weight))
 
     def w_norms(self, v: Array, w: Array, wmg: Array) -> tuple[float, ...]:
         partial = np.zeros((v.shape[0], 4))
         self._split(_kernels().w_norms, v.shape[0], v, w, wmg, partial)
         return tuple(float(s) for s in partial.sum(axis=0))
 
-    def tv_norms(self, v: Array, y: Array, y_prev: Array, ymb: Array, wz: float,
+    def tv_norms(self, v: Array, y: Array, y_prev: Array, ymb: Array, tv_z_weight: float,
                  rho: float) -> tuple[float, ...]:
         partial = np.zeros((v.shape[0], 5))
-        self._split(_kernels().tv_norms, v.shape[0], v, y, y_prev, ymb, np.float32(wz),
+        self._split(_kernels().tv_norms, v.shape[0], v, y, y_prev, ymb, np.float32(tv_z_weight),
                     np.float32(1.0 / rho), partial)
         return tuple(float(s) for s in partial.sum(axis=0))
 

@@ -12,6 +12,7 @@ from volrecon.errors import ConfigError, DataError, ShapeError
 from volrecon.solvers.admm import solve_admm
 from volrecon.solvers.fista import solve_fista
 from volrecon.solvers.info import SolveInfo, SolverState
+from volrecon.solvers.norms import squared_norm
 from volrecon.solvers.rl import solve_rl
 from volrecon.solvers.settings import METHODS
 from volrecon.solvers.tv import tv_value
@@ -20,9 +21,20 @@ if TYPE_CHECKING:
     from volrecon._typing import Array
     from volrecon.models.base import PSFModel
 
-__all__ = ["METHODS", "objective", "reconstruct"]
+__all__ = ["AUTO_COLD_STOP_CHANGE", "AUTO_ITERATION_CAP", "AUTO_STOP_CHANGE", "METHODS",
+           "objective", "reconstruct"]
 
 _SOLVERS = {"admm": solve_admm, "fista": solve_fista, "rl": solve_rl}
+
+#: ``iterations="auto"``: a frame stops after the first iteration whose relative change of the
+#: volume ``c_k = ‖v_k − v_{k−1}‖ / ‖v_k‖`` is at most this, per method (for ADMM, from the
+#: third iteration and only while ``c_k`` falls: after a warm start it first grows), or at
+#: `AUTO_ITERATION_CAP`. A cold start (no previous frame's state) uses the stricter
+#: `AUTO_COLD_STOP_CHANGE`: the chain's later frames build on it. Chosen on simulated videos,
+#: see DEVELOPERS.md "Iterations".
+AUTO_STOP_CHANGE = {"admm": 2e-2, "fista": 2e-2, "rl": 2e-2}
+AUTO_COLD_STOP_CHANGE = {"admm": 5e-3, "fista": 5e-3, "rl": 5e-3}
+AUTO_ITERATION_CAP = 300
 
 
 def objective(volume_zyx: Any, frame_yx: Any, model: PSFModel, *, tv: float = 0.0,
@@ -43,7 +55,7 @@ def _residual(volume: Any, frame: Any, model: PSFModel) -> np.ndarray:
 
 def _objective(volume: Any, residual: np.ndarray, model: PSFModel, *, tv: float, l1: float,
                tv_z_weight: float) -> float:
-    value = 0.5 * float(np.vdot(residual, residual))
+    value = 0.5 * squared_norm(residual)
     if l1:
         value += l1 * float(model.backend.to_numpy(volume).sum(dtype=np.float64))
     if tv:
@@ -52,15 +64,16 @@ def _objective(volume: Any, residual: np.ndarray, model: PSFModel, *, tv: float,
 
 
 @overload
-def reconstruct(frame_yx: Any, model: PSFModel, *, method: str = ..., iterations: int = ...,
-                tv: float = ..., l1: float = ..., tol: float = ..., init: Any = ...,
-                device: str | None = ..., threads: int | None = ..., tv_z_weight: float = ...,
-                return_info: Literal[False] = ...) -> Array: ...
+def reconstruct(frame_yx: Any, model: PSFModel, *, method: str = ...,
+                iterations: int | str = ..., tv: float = ..., l1: float = ..., tol: float = ...,
+                init: Any = ..., device: str | None = ..., threads: int | None = ...,
+                tv_z_weight: float = ..., return_info: Literal[False] = ...) -> Array: ...
 @overload
-def reconstruct(frame_yx: Any, model: PSFModel, *, method: str = ..., iterations: int = ...,
-                tv: float = ..., l1: float = ..., tol: float = ..., init: Any = ...,
-                device: str | None = ..., threads: int | None = ..., tv_z_weight: float = ...,
-                return_info: Literal[True]) -> tuple[Array, SolveInfo]: ...
+def reconstruct(frame_yx: Any, model: PSFModel, *, method: str = ...,
+                iterations: int | str = ..., tv: float = ..., l1: float = ..., tol: float = ...,
+                init: Any = ..., device: str | None = ..., threads: int | None = ...,
+                tv_z_weight: float = ..., return_info: Literal[True],
+                ) -> tuple[Array, SolveInfo]: ...
 
 
 def reconstruct(
@@ -68,7 +81,7 @@ def reconstruct(
     model: PSFModel,
     *,
     method: str = "admm",
-    iterations: int = 100,
+    iterations: int | str = 100,
     tv: float = 0.0,
     l1: float = 0.0,
     tol: float = 1e-4,
@@ -97,8 +110,12 @@ def reconstruct(
         ADMM with the exact Fourier-domain volume update (shift-invariant models only),
         FISTA with restart, or Richardson–Lucy (minimises the Poisson deviance instead of the
         least-squares term; `l1` and `tv` enter its multiplicative update).
-    iterations : int
-        Maximum iterations (≥ 1).
+    iterations : int or "auto"
+        Maximum iterations (≥ 1), or "auto": stop after the first iteration whose relative
+        change of the volume is at most ``AUTO_STOP_CHANGE[method]`` after a warm start,
+        ``AUTO_COLD_STOP_CHANGE[method]`` after a cold one (or when `tol` is met),
+        at most `AUTO_ITERATION_CAP` iterations. Deterministic, so a resumed job repeats
+        every bit.
     tv, l1 : float
         Regularisation weights (≥ 0).
     tol : float
@@ -150,8 +167,14 @@ def reconstruct(
     """
     if method not in METHODS:
         raise ConfigError(f"method must be one of {', '.join(METHODS)}; got {method!r}")
-    if not isinstance(iterations, int | np.integer) or iterations < 1:
-        raise ConfigError(f"iterations must be a positive integer; got {iterations!r}")
+    stop_change = 0.0
+    if iterations == "auto":
+        warm = isinstance(init, SolverState) and init.method == method
+        iterations = AUTO_ITERATION_CAP
+        stop_change = (AUTO_STOP_CHANGE if warm else AUTO_COLD_STOP_CHANGE)[method]
+    elif (isinstance(iterations, bool) or not isinstance(iterations, int | np.integer)
+          or iterations < 1):
+        raise ConfigError(f"iterations must be a positive integer or 'auto'; got {iterations!r}")
     for name, value in (("tv", tv), ("l1", l1), ("tol", tol)):
         if not (math.isfinite(value) and value >= 0):
             raise ConfigError(f"{name} must be a finite number >= 0; got {value!r}")
@@ -176,17 +199,23 @@ def reconstruct(
         raise DataError("frame contains NaN or Inf pixels; repair or skip the frame")
     start = _check_init(init, model, method)
     t0 = time.perf_counter()
+    options: dict[str, Any] = {}
+    if method == "admm":
+        options["stop_change"] = stop_change
+    else:  # their `tol` is already a bound on the relative change of the volume
+        tol = max(tol, stop_change)
     volume, n_iter, converged, state, history = _SOLVERS[method](
         frame, model, iterations=int(iterations), tv=float(tv), l1=float(l1), tol=float(tol),
-        tv_z_weight=float(tv_z_weight), init=start)
+        tv_z_weight=float(tv_z_weight), init=start, **options)
     if not return_info:
         return volume
     seconds = time.perf_counter() - t0
     # One application of A serves both the objective and the relative residual.
     residual = _residual(volume, frame, model)
     value = _objective(volume, residual, model, tv=tv, l1=l1, tv_z_weight=tv_z_weight)
-    frame_norm = float(np.linalg.norm(be.to_numpy(frame)))
-    relative = float(np.linalg.norm(residual)) / frame_norm if frame_norm > 0 else float("nan")
+    frame_norm = math.sqrt(squared_norm(be.to_numpy(frame).astype(np.float64)))
+    relative = (math.sqrt(squared_norm(residual)) / frame_norm if frame_norm > 0
+                else float("nan"))
     info = SolveInfo(method, n_iter, value, relative, converged, seconds, state, history)
     return volume, info
 

@@ -22,8 +22,10 @@ class SolverSettings:
     ----------
     method : {"admm", "fista", "rl"}
         Solver (see :func:`volrecon.reconstruct`).
-    iterations : int
-        Iteration limit per frame, at least 1.
+    iterations : int or "auto"
+        Iteration limit per frame, at least 1; or "auto": each frame stops by the rule of
+        :func:`volrecon.reconstruct` (relative change of the volume), so warm frames take a
+        few iterations and a chain's cold first frame more.
     tv, l1 : float
         Regularisation weights, >= 0, in the units of the model and the frame.
     tol : float
@@ -31,10 +33,14 @@ class SolverSettings:
     tv_z_weight : float
         Weight of depth differences in TV, > 0.
     warm_start : bool
-        Start each frame of a chain from the previous frame's solver state.
-    warm_start_frames : int
-        Frames per warm-start chain, at least 1 (a chain starts from scratch at every
-        multiple of it counted from the job's first frame). Ignored without `warm_start`.
+        Start each frame of a chain from the previous frame's solver state. Without it
+        every frame is a chain of its own (`chain_frames` becomes 1, `lead_in_frames` 0).
+    chain_frames : int
+        Frames per warm-start chain, at least 1: chains are ``[k·chain_frames,
+        (k+1)·chain_frames)`` counted from the job's first frame, whatever ``[compute]`` says.
+    lead_in_frames : int
+        Frames before a chain's first frame that are solved, not stored, so that the chain's
+        first stored frame is warm too (>= 0; fewer at the job's first frame, none before it).
     max_residual : float
         A frame whose relative data residual exceeds this is recorded as failed (> 0).
 
@@ -50,22 +56,28 @@ class SolverSettings:
     """
 
     method: str = "admm"
-    iterations: int = 60
+    iterations: int | str = "auto"
     tv: float = 0.0
     l1: float = 0.0
     tol: float = 1e-4
     tv_z_weight: float = 1.0
     warm_start: bool = True
-    warm_start_frames: int = 8
+    chain_frames: int = 32
+    lead_in_frames: int = 2
     max_residual: float = 2.0
 
     def __post_init__(self) -> None:
         if self.method not in METHODS:
             raise ConfigError(f"method must be one of {', '.join(METHODS)}; got {self.method!r}")
-        for name in ("iterations", "warm_start_frames"):
-            value = getattr(self, name)
-            if isinstance(value, bool) or not isinstance(value, int) or value < 1:
-                raise ConfigError(f"{name} must be an integer of at least 1; got {value!r}")
+        if self.iterations != "auto":
+            _check_count("iterations", self.iterations, also="or 'auto'")
+        _check_count("chain_frames", self.chain_frames)
+        lead = self.lead_in_frames
+        if isinstance(lead, bool) or not isinstance(lead, int) or lead < 0:
+            raise ConfigError(f"lead_in_frames must be an integer >= 0; got {lead!r}")
+        if not self.warm_start:
+            object.__setattr__(self, "chain_frames", 1)
+            object.__setattr__(self, "lead_in_frames", 0)
         for name in ("tv", "l1", "tol"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
@@ -75,16 +87,23 @@ class SolverSettings:
             if not (isinstance(value, int | float) and math.isfinite(value) and value > 0):
                 raise ConfigError(f"{name} must be a finite number > 0; got {value!r}")
 
-    @property
-    def chain_frames(self) -> int:
-        """Frames per warm-start chain: `warm_start_frames`, or 1 without warm start."""
-        return self.warm_start_frames if self.warm_start else 1
+    def chain_span(self, chain_start: int, first: int = 0) -> int:
+        """The first frame solved for the chain that stores from `chain_start`: its lead-in
+        reaches back `lead_in_frames`, never before the job's `first` frame."""
+        return max(first, chain_start - self.lead_in_frames)
 
     def label(self) -> str:
         """Short text naming the settings, e.g. ``"admm 50 it, tv 0.01"``."""
-        text = f"{self.method} {self.iterations} it"
+        text = (f"{self.method} auto it" if self.iterations == "auto"
+                else f"{self.method} {self.iterations} it")
         if self.tv:
             text += f", tv {self.tv:g}"
         if self.l1:
             text += f", l1 {self.l1:g}"
         return text
+
+
+def _check_count(name: str, value: object, *, also: str = "") -> None:
+    if isinstance(value, bool) or not isinstance(value, int) or value < 1:
+        raise ConfigError(f"{name} must be an integer of at least 1{' ' + also if also else ''}; "
+                          f"got {value!r}")

@@ -13,7 +13,7 @@ from volrecon.tune.criteria import CRITERIA, Choice, choose_cell
 from volrecon.tune.iterations import IterationCheck
 from volrecon.tune.jobfile import check_output_path, tuned_document, write_tuned_job
 from volrecon.tune.noise import FrameNoise, dark_statistics, estimate_frame_noise
-from volrecon.tune.reference import RegisteredScore, register_translation, registered_correlation
+from volrecon.tune.reference import RegisteredScore, estimate_volume_shift, registered_correlation
 from volrecon.tune.report import report_dict, summary_text, write_report
 from volrecon.tune.sites import Site, choose_site_frames
 from volrecon.tune.sweep import SweepCell, weight_unit
@@ -33,7 +33,7 @@ __all__ = [
     "choose_site_frames",
     "dark_statistics",
     "estimate_frame_noise",
-    "register_translation",
+    "estimate_volume_shift",
     "registered_correlation",
     "report_dict",
     "summary_text",

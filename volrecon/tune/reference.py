@@ -25,7 +25,7 @@ from scipy.ndimage import shift as nd_shift
 
 from volrecon.errors import DataError, ShapeError
 
-__all__ = ["RegisteredScore", "register_translation", "registered_correlation"]
+__all__ = ["RegisteredScore", "estimate_volume_shift", "registered_correlation"]
 
 
 @dataclass(frozen=True)
@@ -44,14 +44,18 @@ class RegisteredScore:
     shift_zyx: tuple[float, float, float]
 
 
-def register_translation(moving_zyx: np.ndarray, fixed_zyx: np.ndarray, *,
-                         max_shift_zyx: tuple[float, float, float] | None = None
-                         ) -> tuple[float, float, float]:
-    """The translation that aligns `moving_zyx` with `fixed_zyx` (sub-voxel).
+def estimate_volume_shift(reference_zyx: np.ndarray, moving_zyx: np.ndarray, *,
+                          max_shift_zyx: tuple[float, float, float] | None = None
+                          ) -> tuple[float, float, float]:
+    """Shift ``(dz, dy, dx)`` that moves `moving_zyx` onto `reference_zyx` (sub-voxel).
+
+    The 3-D companion of :func:`volrecon.calibrate.estimate_shift` (same argument order):
+    the peak of the plain cross-correlation within `max_shift_zyx`, refined by a parabola
+    through its neighbours along each axis.
 
     Parameters
     ----------
-    moving_zyx, fixed_zyx : ndarray of shape (Z, Y, X)
+    reference_zyx, moving_zyx : ndarray of shape (Z, Y, X)
         Volumes of the same shape.
     max_shift_zyx : tuple of float, optional
         Largest shift searched along each axis, voxels. Default: half of each axis.
@@ -60,7 +64,7 @@ def register_translation(moving_zyx: np.ndarray, fixed_zyx: np.ndarray, *,
     -------
     tuple of float
         ``(dz, dy, dx)`` such that ``scipy.ndimage.shift(moving, (dz, dy, dx))`` lines up with
-        `fixed`.
+        `reference_zyx`.
 
     Raises
     ------
@@ -68,7 +72,7 @@ def register_translation(moving_zyx: np.ndarray, fixed_zyx: np.ndarray, *,
         If the volumes are not 3-D or differ in shape.
     """
     moving = np.asarray(moving_zyx, dtype=np.float64)
-    fixed = np.asarray(fixed_zyx, dtype=np.float64)
+    fixed = np.asarray(reference_zyx, dtype=np.float64)
     if moving.ndim != 3 or moving.shape != fixed.shape:
         raise ShapeError(f"volumes must be 3-D (Z, Y, X) of one shape; got {moving.shape} and "
                          f"{fixed.shape}")
@@ -134,7 +138,7 @@ def registered_correlation(volume_zyx: np.ndarray, reference_zyx: np.ndarray, *,
                         "the sample")
     a = gaussian_filter(np.asarray(volume_zyx, dtype=np.float64), blur_voxels)
     b = gaussian_filter(reference, blur_voxels)
-    shift = register_translation(a, b, max_shift_zyx=max_shift_zyx)
+    shift = estimate_volume_shift(b, a, max_shift_zyx=max_shift_zyx)
     aligned = nd_shift(a, shift, order=1, mode="nearest")
     aligned -= aligned.mean()
     b -= b.mean()

@@ -16,6 +16,7 @@ import numpy as np
 
 from volrecon.solvers import reconstruct
 from volrecon.solvers import solve_chain as chain
+from volrecon.solvers.norms import squared_norm
 
 if TYPE_CHECKING:
     from volrecon.models.base import PSFModel
@@ -85,8 +86,8 @@ def solve_site(model: PSFModel, frames_3yx: np.ndarray, tv: float, l1: float,
     predicted = np.asarray(model.forward(volume), dtype=np.float64)
     residual = predicted - frame
     holdout = predicted - 0.5 * (frames_3yx[0].astype(np.float64) + frames_3yx[2])
-    return SiteSolve(volume=volume, residual_energy=float(np.vdot(residual, residual)),
-                     holdout_energy=float(np.vdot(holdout, holdout)), iterations=n_iter,
+    return SiteSolve(volume=volume, residual_energy=squared_norm(residual),
+                     holdout_energy=squared_norm(holdout), iterations=n_iter,
                      seconds=time.perf_counter() - start)
 
 

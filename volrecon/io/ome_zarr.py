@@ -29,6 +29,7 @@ __all__ = [
     "OME_VERSION",
     "OmeImage",
     "OmeLevel",
+    "chunk_codecs",
     "create_ome_image",
     "ome_image_attributes",
     "parse_ome_image",
@@ -89,6 +90,25 @@ def ome_image_attributes(*, scale_tzyx: tuple[float, float, float, float], name:
     }
 
 
+def chunk_codecs(compression_level: int = 3) -> list[Any]:
+    """The bytes-to-bytes codecs of every array volrecon writes: zstd, then a CRC32C checksum.
+
+    The checksum (zarr v3's ``crc32c`` codec, 4 bytes after the compressed chunk) makes any
+    read of a damaged chunk fail with ``ValueError`` ("Stored and computed checksum do not
+    match") instead of decoding wrong numbers.
+
+    Raises
+    ------
+    ConfigError
+        If `compression_level` is not 1 to 22.
+    """
+    from zarr.codecs import Crc32cCodec, ZstdCodec
+
+    if not 1 <= compression_level <= 22:
+        raise ConfigError(f"compression_level must be 1 to 22; got {compression_level}")
+    return [ZstdCodec(level=compression_level), Crc32cCodec()]
+
+
 def volume_chunks(shape_zyx: tuple[int, int, int], *, itemsize: int = 4,
                   max_chunk_bytes: int = MAX_CHUNK_BYTES) -> tuple[int, int, int, int]:
     """Chunk shape ``(1, zc, Y, X)``: one frame per chunk, split along z to stay small.
@@ -125,7 +145,7 @@ def create_ome_image(path: str | os.PathLike[str], *, shape_tzyx: tuple[int, int
     chunks_tzyx : tuple of 4 ints, optional
         Default :func:`volume_chunks`.
     compression_level : int
-        zstd level, 1 to 22.
+        zstd level, 1 to 22 (chunks also carry a CRC32C checksum, see :func:`chunk_codecs`).
     attributes : dict, optional
         Extra JSON group attributes (beside ``ome``), written with it.
 
@@ -140,10 +160,8 @@ def create_ome_image(path: str | os.PathLike[str], *, shape_tzyx: tuple[int, int
     tell apart from dark ones.
     """
     import zarr
-    from zarr.codecs import ZstdCodec
 
-    if not 1 <= compression_level <= 22:
-        raise ConfigError(f"compression_level must be 1 to 22; got {compression_level}")
+    codecs = chunk_codecs(compression_level)
     shape = tuple(int(n) for n in shape_tzyx)
     chunks = chunks_tzyx or volume_chunks(shape[1:])  # type: ignore[arg-type]
     ome = ome_image_attributes(scale_tzyx=scale_tzyx, name=name,
@@ -153,7 +171,7 @@ def create_ome_image(path: str | os.PathLike[str], *, shape_tzyx: tuple[int, int
     group = zarr.open_group(zarr.storage.LocalStore(os.fspath(path)), mode="w-", zarr_format=3,
                             attributes=dict(attributes or {}))
     group.create_array(IMAGE_PATH, shape=shape, chunks=chunks, dtype="float32",
-                       compressors=ZstdCodec(level=compression_level), fill_value=np.nan,
+                       compressors=codecs, fill_value=np.nan,
                        dimension_names=list(AXES_TZYX))
     group.attrs.update({**(attributes or {}), "ome": ome})
     return group

@@ -23,7 +23,8 @@ from volrecon.pipeline.store import (
     is_job_store,
 )
 
-__all__ = ["StoreStatus", "format_duration", "format_status", "store_status"]
+__all__ = ["StoreStatus", "format_duration", "format_last_verify", "format_status",
+           "store_status"]
 
 
 @dataclass(frozen=True)
@@ -48,6 +49,8 @@ class StoreStatus:
         Seconds until the current run is done at that throughput (``nan`` if not running).
     runs : list of dict
         Every run's record (start, end, outcome, scheduler, …).
+    last_verify : dict or None
+        What the last ``volrecon verify`` found (when, frames, damaged frames), if one ran.
     """
 
     path: Path
@@ -60,6 +63,7 @@ class StoreStatus:
     frames_per_second: float = float("nan")
     seconds_left: float = float("nan")
     runs: list[dict[str, Any]] = field(default_factory=list)
+    last_verify: dict[str, Any] | None = None
 
     @property
     def pending(self) -> int:
@@ -101,6 +105,7 @@ def store_status(path: str | os.PathLike[str]) -> StoreStatus:
         return StoreStatus(path=path, total=total, done=0, failed=0, running=running,
                            holder=holder)
     status = store.status()
+    last_verify = store.attributes.get("last_verify")
     done = int(np.count_nonzero(status != STATUS_PENDING))
     failed = int(np.count_nonzero(status == STATUS_FAILED))
     runs = list(store.attributes.get("runs", []))
@@ -119,7 +124,8 @@ def store_status(path: str | os.PathLike[str]) -> StoreStatus:
             rate = computed / elapsed if elapsed > 0 and computed > 0 else float("nan")
     return StoreStatus(path=path, total=len(status), done=done, failed=failed,
                        failures=store.failures(), running=running, holder=holder,
-                       frames_per_second=rate, seconds_left=seconds_left, runs=runs)
+                       frames_per_second=rate, seconds_left=seconds_left, runs=runs,
+                       last_verify=last_verify if isinstance(last_verify, dict) else None)
 
 
 def format_status(status: StoreStatus, *, max_failures: int = 20) -> list[str]:
@@ -144,7 +150,25 @@ def format_status(status: StoreStatus, *, max_failures: int = 20) -> list[str]:
         lines.append(f"throughput: {status.frames_per_second:.3g} frames/s ({which})")
     if status.running and np.isfinite(status.seconds_left):
         lines.append(f"time left: {format_duration(status.seconds_left)}")
+    if status.last_verify is not None:
+        lines.append(format_last_verify(status.last_verify))
     return lines
+
+
+def format_last_verify(record: dict[str, Any], *, max_frames: int = 10) -> str:
+    """``last verify: <when>, frames a:b, <n> finished frames read: <finding>``."""
+    start, stop = [*record.get("frames", []), "?", "?"][:2]
+    damaged = int(record.get("damaged", 0))
+    found = "all intact"
+    if damaged:
+        shown = [str(t) for t in record.get("damaged_frames", [])[:max_frames]]
+        more = ", …" if damaged > len(shown) else ""
+        found = (f"{damaged} damaged (frames {', '.join(shown)}{more}), marked pending to be "
+                 "recomputed by the next run")
+    if not record.get("checksums", True):
+        found += " (format 1 store: chunks carry no checksums)"
+    return (f"last verify: {record.get('ended', '?')}, frames {start}:{stop}, "
+            f"{record.get('checked', 0)} finished frames read: {found}")
 
 
 def format_duration(seconds: float) -> str:

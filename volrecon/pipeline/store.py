@@ -19,6 +19,15 @@ Layout (zarr v3; attributes in ``schemas/output-store.schema.json``; for users i
 Volume chunks are written by the tasks, one frame per chunk, so no two tasks share a chunk.
 The diagnostics arrays are written only by the driver, after a task's volumes are on disk:
 a frame's ``status`` turns non-zero only when its data is complete.
+
+Every chunk carries a CRC32C checksum after its zstd bytes (store format 2;
+:func:`volrecon.io.ome_zarr.chunk_codecs`), so reading a damaged chunk raises instead of
+returning wrong numbers; ``volrecon verify`` reads them all. Durability: before a task's
+frames are recorded, the driver fsyncs their chunk files (volume, projections) and every
+folder from theirs up to the store's, then the diagnostics chunks it wrote, and only then
+writes and fsyncs the ``status`` chunk (:meth:`JobStore.record`). A frame marked done thus
+survives a power cut on a local file system; zarr's writes are atomic renames, so a chunk is
+either the old or the new one, never a mix.
 """
 
 from __future__ import annotations
@@ -29,7 +38,7 @@ import os
 import re
 import shutil
 import time
-from collections.abc import Mapping
+from collections.abc import Iterable, Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal
@@ -37,13 +46,14 @@ from typing import Any, Literal
 import numpy as np
 
 from volrecon.errors import ConfigError, InputFileError, StoreMismatchError
-from volrecon.io.ome_zarr import IMAGE_PATH, create_ome_image
+from volrecon.io.ome_zarr import IMAGE_PATH, chunk_codecs, create_ome_image
 from volrecon.io.zarr_groups import group_attributes
 
 __all__ = [
     "DIAGNOSTICS",
     "FORMAT_VERSION",
     "PROJECTIONS",
+    "READABLE_FORMATS",
     "STATUS_DONE",
     "STATUS_FAILED",
     "STATUS_PENDING",
@@ -56,7 +66,11 @@ __all__ = [
     "max_projections",
 ]
 
-FORMAT_VERSION = 1
+#: Layout version written: 2 = every chunk carries a CRC32C checksum.
+FORMAT_VERSION = 2
+#: Versions opened, resumed and verified (format 1 stores have no checksums: a resumed one
+#: keeps its arrays' codecs, and verify then finds only chunks that do not decode).
+READABLE_FORMATS = (1, 2)
 STORE_ATTRIBUTE = "volrecon"
 STATUS_PENDING, STATUS_DONE, STATUS_FAILED = 0, 1, 2
 STATUS_NAMES = {STATUS_PENDING: "pending", STATUS_DONE: "done", STATUS_FAILED: "failed"}
@@ -82,6 +96,8 @@ DAMAGE_ERRORS: tuple[type[Exception], ...] = (KeyError, ValueError, TypeError, R
                                               IndexError, AttributeError)
 _PARTIAL = re.compile(r"^.+\.[0-9a-f]{32}\.partial$")
 _DAMAGED_FIX = "restore the store from a copy, or re-run the job with --restart to start over"
+_CHUNK_FIX = ("run 'volrecon verify {path}' to mark the frames it holds for recomputation, or "
+              "re-run the job with --restart to start over")
 
 
 def max_projections(volume_zyx: np.ndarray) -> dict[str, np.ndarray]:
@@ -173,7 +189,9 @@ class JobStore:
         self.path = path
         self.group: Any = group
         arrays = {}
-        for key in (IMAGE_PATH, *(f"diagnostics/{name}" for name in DIAGNOSTICS)):
+        projections = ([f"projections/{name}" for name in PROJECTIONS]
+                       if "projections" in group else [])
+        for key in (IMAGE_PATH, *projections, *(f"diagnostics/{name}" for name in DIAGNOSTICS)):
             try:
                 arrays[key] = group[key]
             except DAMAGE_ERRORS as exc:
@@ -184,6 +202,7 @@ class JobStore:
             if not isinstance(arrays[key], zarr.Array):
                 raise InputFileError(f"{path}: '{key}' is not an array; {_DAMAGED_FIX}")
         self._diagnostics = {name: arrays[f"diagnostics/{name}"] for name in DIAGNOSTICS}
+        self._frame_arrays = {key: arrays[key] for key in (IMAGE_PATH, *projections)}
 
     # ------------------------------------------------------------------------- lifecycle
     @classmethod
@@ -206,7 +225,6 @@ class JobStore:
             ``attributes["volrecon"]``.
         """
         import zarr
-        from zarr.codecs import ZstdCodec
 
         path = Path(path)
         if path.is_dir() and is_vacant(path):
@@ -222,7 +240,7 @@ class JobStore:
             "failures": {}, "status_codes": {str(k): v for k, v in STATUS_NAMES.items()}})
         for name, (dtype, fill) in DIAGNOSTICS.items():
             diagnostics.create_array(name, shape=(n_frames,), chunks=(chunk,), dtype=dtype,
-                                     fill_value=fill, compressors=ZstdCodec(level=3),
+                                     fill_value=fill, compressors=chunk_codecs(3),
                                      dimension_names=["t"])
         if projections:
             group_p = group.create_group("projections")
@@ -232,7 +250,7 @@ class JobStore:
                 shape = tuple(sizes[d] for d in dims)
                 group_p.create_array(name, shape=shape, chunks=(1, *shape[1:]),
                                      dtype="float32", fill_value=np.nan,
-                                     compressors=ZstdCodec(level=compression_level),
+                                     compressors=chunk_codecs(compression_level),
                                      dimension_names=list(dims))
         attributes["state"] = "ready"
         group.attrs[STORE_ATTRIBUTE] = _json(attributes)
@@ -267,10 +285,11 @@ class JobStore:
         if not isinstance(attributes, dict):
             raise InputFileError(
                 f"{path}: attribute '{STORE_ATTRIBUTE}' is not a table; {_DAMAGED_FIX}")
-        if attributes.get("format_version") != FORMAT_VERSION:
+        if attributes.get("format_version") not in READABLE_FORMATS:
             raise InputFileError(
-                f"{path}: output store format {attributes.get('format_version')} is not "
-                f"{FORMAT_VERSION}, the one this volrecon writes; use a matching volrecon"
+                f"{path}: output store format {attributes.get('format_version')} is not one "
+                f"this volrecon reads ({', '.join(map(str, READABLE_FORMATS))}); use a "
+                "matching volrecon"
             )
         if attributes.get("state") != "ready":
             raise InputFileError(
@@ -365,7 +384,7 @@ class JobStore:
         except DAMAGE_ERRORS as exc:
             raise InputFileError(
                 f"{self.path}: array 'diagnostics/status' (the record of finished frames) "
-                f"cannot be read ({exc}); {_DAMAGED_FIX}"
+                f"cannot be read ({exc}); {_CHUNK_FIX.format(path=self.path)}"
             ) from exc
         if status.shape != (self.n_frames,) or status.dtype != np.uint8:
             raise InputFileError(
@@ -385,19 +404,118 @@ class JobStore:
         """Write a finished task's diagnostics; ``status`` last, marking its frames done.
 
         Call only after the task's volumes are written (the task returns after writing).
+        The frames' volume and projection chunks are flushed to disk first (fsync of the files
+        and their folders), then the diagnostics, then the status chunk, so a frame recorded
+        done has all its data on disk.
+
+        Raises
+        ------
+        InputFileError
+            If a diagnostics chunk this write must merge into is damaged.
         """
         region = slice(records.start, records.stop)
-        for name in DIAGNOSTICS:
-            if name != "status":
-                self._diagnostics[name][region] = getattr(records, name)
+        self.sync([path for t in range(records.start, records.stop)
+                   for path in self.frame_chunk_paths(t)])
+        try:
+            for name in DIAGNOSTICS:
+                if name != "status":
+                    self._diagnostics[name][region] = getattr(records, name)
+        except DAMAGE_ERRORS as exc:
+            raise InputFileError(
+                f"{self.path}: a chunk of 'diagnostics/{name}' holding frames "
+                f"{records.start}:{records.stop} cannot be read ({exc}); "
+                f"{_CHUNK_FIX.format(path=self.path)}"
+            ) from exc
         old = self.failures()
         failures = {t: reason for t, reason in old.items()
                     if not records.start <= t < records.stop}
         failures.update(records.failures)
         if failures != old:
-            self.group["diagnostics"].attrs["failures"] = {
-                str(k): v for k, v in sorted(failures.items())}
+            self._set_failures(failures)
+        self.sync([*self.diagnostics_chunk_paths(region, skip=("status",)),
+                   self.path / "diagnostics" / "zarr.json"])
         self._diagnostics["status"][region] = records.status
+        self.sync(self.diagnostics_chunk_paths(region, only=("status",)))
+
+    def mark_pending(self, frames: Iterable[int], *,
+                     damaged_chunks: Iterable[str | os.PathLike[str]] = ()) -> None:
+        """Mark `frames` pending so the next run recomputes them, and delete damaged chunks.
+
+        Chunk files of the ``status`` array among `damaged_chunks` are deleted first (their
+        frames read as pending then); the status record of `frames` is written and flushed
+        next, their failure reasons dropped, and only then the other damaged chunk files are
+        deleted, so a crash in between leaves frames pending, never done without data.
+        Diagnostics chunks are shared by many frames: the caller marks all of theirs pending.
+
+        Parameters
+        ----------
+        frames : iterable of int
+            Store frame indices.
+        damaged_chunks : iterable of paths
+            Chunk files inside the store that cannot be read.
+        """
+        frames = sorted(set(int(t) for t in frames))
+        chunks = [Path(c) for c in damaged_chunks]
+        status_folder = self.path / "diagnostics" / "status"
+        first = [c for c in chunks if status_folder in c.parents]
+        _delete(first)
+        self.sync(first)
+        if frames:
+            status = self.status()
+            status[frames] = STATUS_PENDING
+            region = slice(frames[0], frames[-1] + 1)
+            self._diagnostics["status"][region] = status[region]
+            self.sync(self.diagnostics_chunk_paths(region, only=("status",)))
+            old = self.failures()
+            failures = {t: reason for t, reason in old.items() if t not in set(frames)}
+            if failures != old:
+                self._set_failures(failures)
+                self.sync([self.path / "diagnostics" / "zarr.json"])
+        rest = [c for c in chunks if c not in first]
+        _delete(rest)
+        self.sync(rest)
+
+    def _set_failures(self, failures: dict[int, str]) -> None:
+        self.group["diagnostics"].attrs["failures"] = {
+            str(k): v for k, v in sorted(failures.items())}
+
+    # ------------------------------------------------------------------------ chunk files
+    def frame_arrays(self) -> dict[str, Any]:
+        """The arrays with one chunk row per frame: ``"0"`` and the projections, by path."""
+        return dict(self._frame_arrays)
+
+    def diagnostics_arrays(self) -> dict[str, Any]:
+        """The diagnostics arrays, by name (:data:`DIAGNOSTICS`)."""
+        return dict(self._diagnostics)
+
+    def chunk_path(self, array: Any, coords: tuple[int, ...]) -> Path:
+        """The file of chunk `coords` (chunk-grid indices) of `array`."""
+        return self.path.joinpath(*array.path.split("/"),
+                                  *array.metadata.encode_chunk_key(coords).split("/"))
+
+    def frame_chunk_paths(self, t: int) -> list[Path]:
+        """The chunk files of frame `t` in ``"0"`` and the projections (whether they exist
+        or not: a chunk equal to the fill value is never written)."""
+        return [self.chunk_path(array, (t, *rest))
+                for array in self.frame_arrays().values()
+                for rest in _grid(array.cdata_shape[1:])]
+
+    def diagnostics_chunk_paths(self, region: slice, *, only: Iterable[str] | None = None,
+                                skip: Iterable[str] = ()) -> list[Path]:
+        """The chunk files of the diagnostics arrays that hold frames ``region``."""
+        names = [n for n in (DIAGNOSTICS if only is None else only) if n not in set(skip)]
+        paths = []
+        for name in names:
+            array = self._diagnostics[name]
+            step = int(array.chunks[0])
+            paths += [self.chunk_path(array, (c,))
+                      for c in range(region.start // step, (region.stop - 1) // step + 1)]
+        return paths
+
+    def sync(self, paths: Iterable[Path]) -> None:
+        """fsync each existing file of `paths`, then each folder from theirs up to the store
+        (new folders' entries live in their parents)."""
+        _fsync_tree(paths, self.path)
 
     def diagnostics(self) -> dict[str, np.ndarray]:
         """All per-frame diagnostics as arrays ``(T,)``."""
@@ -416,6 +534,54 @@ class JobStore:
 
 
 # ------------------------------------------------------------------------------- helpers
+def _grid(shape: tuple[int, ...]) -> Iterator[tuple[int, ...]]:
+    """Every index of an array of `shape`, in C order."""
+    yield from (tuple(int(i) for i in index) for index in np.ndindex(*shape))
+
+
+def _delete(paths: Iterable[Path]) -> None:
+    for path in paths:
+        path.unlink(missing_ok=True)
+
+
+def _fsync_tree(paths: Iterable[Path], root: Path) -> None:
+    """fsync the files of `paths` that exist, then every folder from theirs up to `root`.
+
+    The calls run side by side in a few threads: a journaling file system then commits them
+    together instead of one journal commit after the other; each is still a full fsync.
+    """
+    from concurrent.futures import ThreadPoolExecutor
+
+    targets: list[Path] = []
+    folders: set[Path] = set()
+    for path in paths:
+        targets.append(path)
+        folder = path.parent
+        while folder not in folders and (folder == root or root in folder.parents):
+            folders.add(folder)
+            folder = folder.parent
+    targets += sorted(folders)
+    if len(targets) <= 2:
+        for target in targets:
+            _fsync(target)
+        return
+    with ThreadPoolExecutor(min(16, len(targets)), thread_name_prefix="volrecon-fsync") as pool:
+        for _ in pool.map(_fsync, targets):
+            pass
+
+
+def _fsync(path: Path) -> None:
+    """fsync one file or folder; nothing if it does not exist (a chunk never written)."""
+    try:
+        fd = os.open(path, os.O_RDONLY)
+    except (FileNotFoundError, NotADirectoryError):
+        return
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
 def _json(value: Any) -> Any:
     """A JSON-safe deep copy (tuples become lists, numpy scalars plain numbers)."""
     return json.loads(json.dumps(value, default=_json_default))

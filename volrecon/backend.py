@@ -7,14 +7,19 @@ imported only here and only when the GPU is asked for, so volrecon runs without 
 from __future__ import annotations
 
 import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
+from itertools import pairwise
 from types import ModuleType
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import scipy.fft
 
 from volrecon.errors import BackendError, ConfigError
+
+if TYPE_CHECKING:
+    from collections.abc import Callable
 
 __all__ = ["Backend", "available_cores", "get_backend", "physical_memory_bytes", "split_threads"]
 
@@ -68,10 +73,19 @@ class Backend:
     threads: int
 
     def rfft2(self, a: Any, shape_yx: tuple[int, int]) -> Any:
-        """Real 2-D FFT over the last two axes, zero-padding them to `shape_yx`."""
-        if self.device == "cpu":
-            return self.fft.rfft2(a, s=shape_yx, workers=self.threads)
-        return self.fft.rfft2(a, s=shape_yx)
+        """Real 2-D FFT over the last two axes, zero-padding them to `shape_yx`.
+
+        Where `a` has fewer rows than the grid, the transform along x runs only on the rows
+        present and the one along y zero-pads them: the zero rows are never transformed. The
+        result is the same as that of the full padded transform (the same 1-D transforms of
+        the same data).
+        """
+        kw = {"workers": self.threads} if self.device == "cpu" else {}
+        py, px = shape_yx
+        if a.shape[-2] >= py:
+            return self.fft.rfft2(a, s=shape_yx, **kw)
+        rows = self.fft.rfft(a, n=px, axis=-1, **kw)
+        return self.fft.fft(rows, n=py, axis=-2, overwrite_x=True, **kw)
 
     def irfft2(self, a: Any, shape_yx: tuple[int, int], *, overwrite: bool = False) -> Any:
         """Inverse of :meth:`rfft2` on a grid of `shape_yx` (no cropping). With `overwrite`
@@ -81,30 +95,58 @@ class Backend:
         return self.fft.irfft2(a, s=shape_yx, overwrite_x=overwrite)
 
     def irfft2_window(self, a: Any, shape_yx: tuple[int, int], window_yx: tuple[int, int], *,
-                      reverse: bool = False) -> Any:
+                      reverse: bool = False, overwrite: bool = False, out: Any = None) -> Any:
         """Inverse real 2-D FFT evaluated only on a ``window_yx`` corner of the grid.
 
         Returns ``r[..., :Y, :X]`` of ``r = irfft2(a, shape_yx)`` or, with `reverse`, the
         circularly index-reversed window ``r[..., -i mod Py, -j mod Px]``. The inverse along y
         runs on every column, the one along x only on the Y rows kept: fewer transforms than
-        the full inverse followed by a crop.
+        the full inverse followed by a crop. With `overwrite` the transform may use `a` as
+        scratch space; with `out` (of the window's shape and the real dtype) the window is
+        written there and `out` returned.
         """
         py, px = shape_yx
         ny, nx = window_yx
         kw = {"workers": self.threads} if self.device == "cpu" else {}
-        columns = self.fft.ifft(a, axis=-2, **kw)
+        columns = self.fft.ifft(a, axis=-2, overwrite_x=overwrite, **kw)
         if reverse:
             rows = self.xp.concatenate([columns[..., :1, :], columns[..., : py - ny : -1, :]],
                                        axis=-2)
         else:
             rows = columns[..., :ny, :]
-        full = self.fft.irfft(rows, n=px, axis=-1, **kw)
-        if not reverse:
-            return self.xp.ascontiguousarray(full[..., :nx])
-        out = self.xp.empty((*full.shape[:-1], nx), dtype=full.dtype)
-        out[..., 0] = full[..., 0]
-        out[..., 1:] = full[..., : px - nx : -1]
+        # `rows` is a new array or a view of one: the inverse along x may use it as scratch.
+        full = self.fft.irfft(rows, n=px, axis=-1, overwrite_x=True, **kw)
+        if out is None:
+            out = self.xp.empty((*full.shape[:-1], nx), dtype=full.dtype)
+        if reverse:
+            out[..., 0] = full[..., 0]
+            out[..., 1:] = full[..., : px - nx : -1]
+        else:
+            out[...] = full[..., :nx]
         return out
+
+    def split_bounds(self, n: int) -> list[int]:
+        """The range ends :meth:`run_split` cuts ``[0, n)`` at: up to `threads` contiguous
+        ranges, as equal as possible (``[0, n]`` for one)."""
+        pieces = max(1, min(self.threads, n))
+        return [n * k // pieces for k in range(pieces + 1)]
+
+    def run_split(self, kernel: Callable[..., None], n: int, *args: Any) -> None:
+        """Run ``kernel(*args, lo, hi)`` on the ranges of :meth:`split_bounds` at once.
+
+        For compiled kernels that release the GIL and write disjoint ranges of their outputs.
+        With one range the kernel runs in the calling thread; otherwise the calling thread
+        runs the first and pool threads the others.
+        """
+        bounds = self.split_bounds(n)
+        if len(bounds) <= 2:
+            kernel(*args, 0, n)
+            return
+        pool = _pool()
+        futures = [pool.submit(kernel, *args, lo, hi) for lo, hi in pairwise(bounds[1:])]
+        kernel(*args, bounds[0], bounds[1])
+        for f in futures:
+            f.result()
 
     def asarray(self, a: Any, dtype: Any = None) -> Any:
         """Move `a` onto this backend's device (no copy if already there)."""
@@ -115,6 +157,17 @@ class Backend:
         if self.device == "cpu":
             return np.asarray(a)
         return self.xp.asnumpy(a)  # type: ignore[no-any-return]
+
+
+_POOL: list[ThreadPoolExecutor] = []
+
+
+def _pool() -> ThreadPoolExecutor:
+    """The worker threads of :meth:`Backend.run_split`, started on first use."""
+    if not _POOL:
+        _POOL.append(ThreadPoolExecutor(max_workers=available_cores(),
+                                        thread_name_prefix="volrecon-kernels"))
+    return _POOL[0]
 
 
 def _import_cupy() -> tuple[ModuleType, ModuleType]:

@@ -60,6 +60,9 @@ def _add_calibrate(sub: argparse._SubParsersAction) -> None:  # type: ignore[typ
                    help="energy fraction kept by --rank auto (default 0.999)")
     p.add_argument("--positions", metavar="P.csv", help="CSV of y_px,x_px per field position "
                    "(for a (K, Z, Y, X) scan): field-varying model")
+    p.add_argument("--normalise-planes", action="store_true",
+                   help="scale every plane to unit sum (default: planes scaled together, so "
+                   "the model keeps the measured relative throughput per depth)")
     p.add_argument("--out", required=True, metavar="MODEL", help="model store to write")
     p.set_defaults(run=_run_calibrate)
 
@@ -72,7 +75,8 @@ def _run_calibrate(args: argparse.Namespace) -> int:
         depth_start_um=args.depth_start, dark_path=args.dark, positions_path=args.positions,
         wavelength_nm=args.wavelength, bin_factor=args.bin,
         crop_yx=None if args.crop is None else parse_crop(args.crop),
-        rank=parse_rank(args.rank), energy=args.energy)
+        rank=parse_rank(args.rank), energy=args.energy,
+        normalization="planes" if args.normalise_planes else "stack")
     print(result.report.summary_text())
     print(f"model written to {args.out}")
     return 0
@@ -98,6 +102,7 @@ def _run_run(args: argparse.Namespace) -> int:
 
     from volrecon.pipeline import format_status, progress_bar, run_job, store_status
     from volrecon.pipeline.config import load_job
+    from volrecon.pipeline.convergence import store_convergence
 
     job = load_job(args.job)
     if args.estimate:
@@ -125,6 +130,9 @@ def _run_run(args: argparse.Namespace) -> int:
     print(f"{result.store_path}: {result.done}/{result.total} frames done, {result.failed} "
           f"failed; this run computed {result.computed} frames in {result.seconds:.1f} s "
           f"({rate:.3g} frames/s)")
+    advice = store_convergence(result.store_path).advice()
+    if advice:
+        print(f"volrecon run: {advice}", file=sys.stderr)
     if result.failed:
         # Exit status 1: the job went on past frames that failed (NaN pixels, divergence).
         failures = store_status(result.store_path).failures
@@ -147,9 +155,45 @@ def _add_status(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-a
 
 def _run_status(args: argparse.Namespace) -> int:
     from volrecon.pipeline import format_status, store_status
+    from volrecon.pipeline.convergence import store_convergence
 
     print("\n".join(format_status(store_status(args.store))))
+    convergence = store_convergence(args.store)
+    print(f"convergence: {convergence.converged} frames met the stopping rule, "
+          f"{convergence.at_cap} stopped at the iteration cap")
+    advice = convergence.advice()
+    if advice:
+        print(f"advice: {advice}")
     return 0
+
+
+def _add_verify(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    p = sub.add_parser(
+        "verify", help="read every finished frame of a store; send damaged ones back",
+        description="Read every chunk of every finished frame (volume, projections, "
+        "diagnostics) and check its checksum. Exit 0 when all are intact; exit 1 with one "
+        "line per damaged frame, which is marked pending so that the next 'volrecon run' of "
+        "the job recomputes it.")
+    p.add_argument("store", metavar="OUT", help="the job's output store")
+    p.add_argument("--frames", metavar="a:b", default=None,
+                   help="store frames a to b-1 (default all)")
+    p.add_argument("--no-progress", action="store_true", help="do not draw the progress bar")
+    p.set_defaults(run=_run_verify)
+
+
+def _run_verify(args: argparse.Namespace) -> int:
+    from volrecon.pipeline.verify import verify_progress_bar, verify_store
+
+    with verify_progress_bar(disable=True if args.no_progress else None) as progress:
+        report = verify_store(args.store, frames=args.frames, progress=progress)
+    start, stop = report.frames
+    if report.intact:
+        print(f"{report.path}: frames {start}:{stop}: {report.checked} finished frames intact")
+        return 0
+    print("\n".join(report.lines()))
+    print(f"volrecon verify: {len(report.damaged)} damaged frames marked pending; run the job "
+          "again to recompute them", file=sys.stderr)
+    return 1
 
 
 def _add_export(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
@@ -168,6 +212,26 @@ def _run_export(args: argparse.Namespace) -> int:
 
     out = export_tiff(args.store, args.tiff, frames=args.frames, projection=args.projection)
     print(out)
+    return 0
+
+
+def _add_init(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    p = sub.add_parser(
+        "init", help="write a commented job file with every key and its default",
+        description="Write a job file listing every key of schemas/job.schema.json with its "
+        "description and default; the few values to edit (model, video, output paths, frame "
+        "interval) are marked. Never overwrites.")
+    p.add_argument("path", metavar="PATH", nargs="?", default="job.toml",
+                   help="job file to write, or a folder for its job.toml (default job.toml)")
+    p.set_defaults(run=_run_init)
+
+
+def _run_init(args: argparse.Namespace) -> int:
+    from volrecon.pipeline.template import write_job_template
+
+    path = write_job_template(args.path)
+    print(f"{path}: written; edit the values marked '<- edit', then run "
+          f"'volrecon run {path} --estimate'")
     return 0
 
 
@@ -301,9 +365,11 @@ _COMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [  # type: ignor
     _add_calibrate,
     _add_run,
     _add_status,
+    _add_verify,
     _add_export,
     _add_view,
     _add_tune,
+    _add_init,
 ]
 
 

@@ -11,12 +11,15 @@ __all__ = [
     "BackendError",
     "ConfigError",
     "DataError",
+    "FrameOffsetWarning",
+    "HotPixelWarning",
     "InputFileError",
     "ModelStoreError",
     "OutputWriteError",
     "ShapeError",
     "StoreLockedError",
     "StoreMismatchError",
+    "UnitWarning",
     "VolreconError",
     "VolreconWarning",
 ]
@@ -64,3 +67,15 @@ class BackendError(VolreconError, RuntimeError):
 
 class VolreconWarning(UserWarning):
     """Something odd that does not stop the work."""
+
+
+class FrameOffsetWarning(VolreconWarning):
+    """The frames' offset looks wrong: a dark subtracted twice, too high, or not given."""
+
+
+class HotPixelWarning(VolreconWarning):
+    """The video holds hot pixels that no dark frame removes."""
+
+
+class UnitWarning(VolreconWarning):
+    """A physical size lies outside the range common for the instrument (a unit mix-up?)."""

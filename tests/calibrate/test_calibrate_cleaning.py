@@ -25,7 +25,11 @@ def test_known_psf_recovered_from_offset_poisson_and_hot_pixels(rng, gaussian, c
     # correlation (numpy.corrcoef) >= 0.95 for every plane.
     for got, truth in zip(cleaned.psf_zyx, psf, strict=True):
         assert np.corrcoef(got.ravel(), truth.ravel())[0, 1] >= 0.95
-    np.testing.assert_allclose(cleaned.psf_zyx.sum(axis=(1, 2)), 1.0, rtol=1e-5)
+    # Normalised over the stack: each plane sums to its measured throughput; the truth has
+    # equal energy in every plane (Poisson noise and masked-off faint tails: a few per cent).
+    sums = cleaned.psf_zyx.sum(axis=(1, 2))
+    np.testing.assert_allclose(sums, cleaned.throughput, rtol=1e-5)
+    np.testing.assert_allclose(sums, 1.0, rtol=0.03)
     assert cleaned.psf_zyx.min() >= 0 and cleaned.psf_zyx.dtype == np.float32
     # Known truth: the camera offset was 100 counts (Poisson: the mean is the offset; the
     # clipped mean of ~700 border pixels is within 1 count).
@@ -129,7 +133,7 @@ def test_crop_and_bin_in_clean(rng, gaussian, camera):
 
 def test_without_normalisation_keeps_counts(rng, gaussian, camera):
     raw, _ = camera(rng, gaussian(2, 40), photons=3e4)
-    cleaned = clean_psf_stack(raw, normalize=False, support_sigma=None, hot_pixel_sigma=None)
+    cleaned = clean_psf_stack(raw, normalization="none", support_sigma=None, hot_pixel_sigma=None)
     assert not cleaned.normalized and cleaned.support_fraction == 1.0
     # Known truth: 3e4 photons per plane plus the positive bias of clipped noise.
     assert (cleaned.psf_zyx.sum(axis=(1, 2)) > 3e4 * 0.95).all()

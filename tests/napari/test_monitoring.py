@@ -22,6 +22,8 @@ def test_snapshot_of_a_stopped_half_finished_store(output_store):
     np.testing.assert_array_equal(snapshot.diagnostics["residual"], output_store.residual)
     assert snapshot.summary()[:2] == [f"{FINISHED} of {N_FRAMES} frames finished, 1 failed",
                                       "state: stopped"]
+    # conftest marked every frame converged; the failed one (of the finished) is not counted.
+    assert snapshot.summary()[2] == f"converged: {FINISHED - 1}, at the iteration cap: 0"
     assert any("frame 4: solver diverged" in line for line in snapshot.details())
 
 
@@ -72,3 +74,13 @@ def test_plot_series_bins_long_jobs_by_mean_of_done_frames(rng):
                                                (7500, "2 h 05 min"), (float("inf"), "unknown")])
 def test_format_duration(seconds, text):
     assert format_duration(seconds) == text
+
+
+def test_view_without_a_display_is_one_line_not_a_qt_abort(output_store, monkeypatch, capsys):
+    from volrecon.cli import main
+
+    for name in ("DISPLAY", "WAYLAND_DISPLAY", "QT_QPA_PLATFORM"):
+        monkeypatch.delenv(name, raising=False)
+    assert main(["view", str(output_store.path)]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "needs a display" in err[0] and "xvfb-run" in err[0]

@@ -273,7 +273,7 @@ def test_viewer_opens_a_store_written_by_a_job(tmp_path, volrecon_plugin):
     volume = np.zeros(SHAPE_ZYX, np.float32)
     volume[1, 10, 12] = 500.0
     frames = np.stack([model.forward(np.roll(volume, t, axis=2)) for t in range(4)])
-    tifffile.imwrite(tmp_path / "raw.tif", (frames + 100).astype(np.uint16),
+    tifffile.imwrite(tmp_path / "raw.tif", np.round(frames).astype(np.uint16),
                      photometric="minisblack")
     job = job_from_dict({
         "model": {"path": "model"}, "video": {"path": "raw.tif"},

@@ -80,4 +80,21 @@ def test_progress_bar_shows_count_and_rate(job_files):
     with progress_bar(file=stream, disable=False) as update:
         run_job(load_job(job_files.write_job()), progress=update)
     text = stream.getvalue()
-    assert f"{N_FRAMES}/{N_FRAMES}" in text and "frame/s" in text and "failed=0" in text
+    assert f"{N_FRAMES}/{N_FRAMES}" in text and "frames/s" in text and "0 failed" in text
+    # The bar is drawn from the run's start (0 of 12 before the first task ends).
+    assert f"0/{N_FRAMES}" in text
+
+
+def test_progress_in_a_log_is_plain_lines_with_wall_time_rate(job_files):
+    # Not a terminal (a StringIO, like a batch system's log file): plain lines, the first at
+    # the start, the last at the end; the rate is frames over this run's wall time, the same
+    # arithmetic as the run's summary line.
+    stream = io.StringIO()
+    with progress_bar(file=stream, interval_s=3600.0) as update:
+        result = run_job(load_job(job_files.write_job()), progress=update)
+    lines = stream.getvalue().splitlines()
+    assert lines[0] == f"progress: 0/{N_FRAMES} frames (0 failed), starting"
+    assert lines[-1].startswith(f"progress: {N_FRAMES}/{N_FRAMES} frames (0 failed), ")
+    rate = float(lines[-1].split(", ")[1].split()[0])
+    assert rate == pytest.approx(N_FRAMES / result.seconds, rel=0.5)
+    assert "\r" not in stream.getvalue()

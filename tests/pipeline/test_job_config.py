@@ -83,3 +83,11 @@ def test_with_compute_revalidates(job_files):
     assert other.compute.workers == 3 and other.model_path == job.model_path
     with pytest.raises(ConfigError, match=r"compute\.workers"):
         job.with_compute(workers=0)
+
+
+def test_job_file_with_a_byte_order_mark_loads(job_files):
+    # Editors on Windows save UTF-8 with a byte-order mark (U+FEFF); TOML itself forbids it
+    # before the first key, so it is dropped on reading.
+    path = job_files.write_job()
+    path.write_bytes(b"\xef\xbb\xbf" + path.read_bytes())
+    assert load_job(path).solver == load_job(job_files.write_job()).solver

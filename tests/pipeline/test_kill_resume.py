@@ -37,9 +37,10 @@ def slow_job(tmp_path, rng) -> Path:
                                          pixel_size_um=0.5)
     model.save(tmp_path / "model")
     tifffile.imwrite(tmp_path / "raw.tif", bead_video(model, N_FRAMES, rng))
+    tifffile.imwrite(tmp_path / "dark.tif", np.full((40, 40), 100, np.uint16))  # its offset
     document = {
         "model": {"path": "model"},
-        "video": {"path": "raw.tif"},
+        "video": {"path": "raw.tif", "dark": "dark.tif"},
         "solver": {"method": "admm", "iterations": 120, "tv": 1e-3, "tol": 0.0,
                    "chain_frames": 2},
         "output": {"path": "out.zarr", "time_interval_s": 0.1, "max_projections": True},

@@ -48,6 +48,10 @@ class Case:
         Expected exit status.
     test : str
         The test that checks a case without `setup`.
+    warns : bool
+        The input is odd, not unusable: the command goes on (exit 0, or 1 when frames then
+        fail) and prints one ``warning:`` line about it (checked by
+        ``test_odd_input_gives_one_warning_line``).
     """
 
     name: str
@@ -57,6 +61,7 @@ class Case:
     setup: Setup | None = None
     exit_status: int = 2
     test: str = "test_bad_input_gives_one_line_and_changes_nothing"
+    warns: bool = False
 
 
 CASES: list[Case] = []
@@ -67,6 +72,16 @@ def case(name: str, bad_input: str, command: str, *expect: str, exit_status: int
     """Register the decorated setup function as a catalogue case."""
     def register(setup: Setup) -> Setup:
         CASES.append(Case(name, bad_input, command, tuple(expect), setup, exit_status))
+        return setup
+    return register
+
+
+def warning(name: str, bad_input: str, command: str, *expect: str, exit_status: int = 0
+            ) -> Callable[[Setup], Setup]:
+    """Register the decorated setup function as a case that warns and goes on."""
+    def register(setup: Setup) -> Setup:
+        CASES.append(Case(name, bad_input, command, tuple(expect), setup, exit_status,
+                          "test_odd_input_gives_one_warning_line", warns=True))
         return setup
     return register
 
@@ -365,6 +380,39 @@ def _(files: JobFiles) -> list[str]:
     return _run(files, "d.toml", video={"dark": "darknan.tif"})
 
 
+@case("dark_other_camera", "frames mostly below the dark (uint8 video, 16-bit dark)", "run",
+      "u8.tif", "below zero after subtracting the dark", "dark16.tif", "remove [video] dark")
+def _(files: JobFiles) -> list[str]:
+    tifffile.imwrite(files.folder / "u8.tif", (files.raw // 16).astype(np.uint8))
+    tifffile.imwrite(files.folder / "dark16.tif", np.full((24, 24), 1600, np.uint16))
+    return _run(files, "d.toml", video={"path": "u8.tif", "dark": "dark16.tif"})
+
+
+@warning("dark_twice", "dark subtracted twice (float video already offset-subtracted)",
+         "run", "float.tif", "% of the sampled pixels are below zero", "subtracted twice",
+         "remove [video] dark", exit_status=1)
+def _(files: JobFiles) -> list[str]:
+    # Every volume then explains none of its frame: the frames fail (exit 1), not stored as 0.
+    tifffile.imwrite(files.folder / "float.tif", files.raw.astype(np.float32) - 100)
+    return _run(files, "w.toml", video={"path": "float.tif"}, output={"path": "w.zarr"})
+
+
+@warning("dark_not_given", "no dark for a camera with an offset", "run", "raw.tif",
+         "no [video] dark is given", "flat pedestal", "set [video] dark")
+def _(files: JobFiles) -> list[str]:
+    return _run(files, "w.toml", video={"dark": None}, output={"path": "w.zarr"})
+
+
+@warning("hot_pixels", "hot pixels in the video that the dark does not remove", "run",
+         "hot.tif", "2 hot pixels", 'hot_pixels = "repair"')
+def _(files: JobFiles) -> list[str]:
+    hot = files.raw.copy()
+    hot[:, 5, 7] += 500
+    hot[:, 15, 20] += 300
+    tifffile.imwrite(files.folder / "hot.tif", hot)
+    return _run(files, "w.toml", video={"path": "hot.tif"}, output={"path": "w.zarr"})
+
+
 @case("flat_zero", "flat field with zero pixels", "run", "flat.tif",
       "zero or negative after dark subtraction", "more light")
 def _(files: JobFiles) -> list[str]:
@@ -420,11 +468,11 @@ def _(files: JobFiles) -> list[str]:
 
 
 @case("output_newer_format", "output store from a newer volrecon format", "run",
-      "output store format 2", "use a matching volrecon")
+      "output store format 3", "use a matching volrecon")
 def _(files: JobFiles) -> list[str]:
     meta_file = files.folder / "out.zarr" / "zarr.json"
     meta = json.loads(meta_file.read_text())
-    meta["attributes"]["volrecon"]["format_version"] = 2
+    meta["attributes"]["volrecon"]["format_version"] = 3
     meta_file.write_text(json.dumps(meta))
     return _run(files, "job.toml")
 
@@ -475,6 +523,36 @@ def _(files: JobFiles) -> list[str]:
             str(files.folder / "v.tif"), "--frames", "20:30"]
 
 
+# --------------------------------------------------------------------------------- verify
+@case("verify_model_store", "`verify` of a PSF model store (not an output store)", "verify",
+      "model", "not a volrecon output store", "[output] path")
+def _(files: JobFiles) -> list[str]:
+    return ["verify", str(files.folder / "model"), "--no-progress"]
+
+
+@case("verify_damaged_metadata", "`verify` of a store whose `zarr.json` is damaged", "verify",
+      "out.zarr", "metadata (zarr.json) is damaged", "restore the store from a copy")
+def _(files: JobFiles) -> list[str]:
+    (files.folder / "out.zarr" / "zarr.json").write_text('{"zarr_format": 3, "node_')
+    return ["verify", str(files.folder / "out.zarr"), "--no-progress"]
+
+
+@case("verify_other_format", "`verify` of an output store of another format", "verify",
+      "output store format 3", "use a matching volrecon")
+def _(files: JobFiles) -> list[str]:
+    meta_file = files.folder / "out.zarr" / "zarr.json"
+    meta = json.loads(meta_file.read_text())
+    meta["attributes"]["volrecon"]["format_version"] = 3
+    meta_file.write_text(json.dumps(meta))
+    return ["verify", str(files.folder / "out.zarr"), "--no-progress"]
+
+
+@case("verify_frames_range", "`verify --frames` outside the store", "verify", "--frames",
+      "selects no frame", "use a range inside 0:12")
+def _(files: JobFiles) -> list[str]:
+    return ["verify", str(files.folder / "out.zarr"), "--frames", "30:40", "--no-progress"]
+
+
 # ------------------------------------------------------------------------------ calibrate
 def _calibrate(files: JobFiles, stack: str, *extra: str) -> list[str]:
     return ["calibrate", str(files.folder / stack), "--pixel-size", "0.65",
@@ -514,12 +592,22 @@ def _(files: JobFiles) -> list[str]:
     return _calibrate(files, "cutscan.tif", "--depth-step", "2")
 
 
+@warning("calibrate_nm_pixel", "pixel size in nanometres (`--pixel-size 800`)", "calibrate",
+         "--pixel-size", "is 800 um", "use 0.8")
+def _(files: JobFiles) -> list[str]:
+    tifffile.imwrite(files.folder / "scan.tif", files.model.psf_zyx, photometric="minisblack")
+    return ["calibrate", str(files.folder / "scan.tif"), "--pixel-size", "800",
+            "--depth-step", "2", "--out", str(files.folder / "new_model")]
+
+
 def markdown_table() -> str:
     """The README table: one row per case."""
-    rows = ["| # | Bad input | Command | The error line names, and says |",
+    rows = ["| # | Bad input | Command | The error (or warning) line names, and says |",
             "|---|---|---|---|"]
     for number, item in enumerate(CASES, start=1):
         said = " … ".join(f"`{fragment}`" for fragment in item.expect)
+        if item.warns:
+            said = f"warning: {said}"
         rows.append(f"| {number} | {item.bad_input} | `volrecon {item.command}` | {said} |")
     return "\n".join(rows)
 

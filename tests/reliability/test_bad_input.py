@@ -27,7 +27,8 @@ from volrecon.pipeline import StoreLock, load_job, run_job, store_status
 from volrecon.pipeline.lock import lock_path_for
 from volrecon.pipeline.store import STATUS_DONE, STATUS_PENDING
 
-RUNNABLE = [c for c in CASES if c.setup is not None]
+RUNNABLE = [c for c in CASES if c.setup is not None and not c.warns]
+WARNING_CASES = [c for c in CASES if c.warns]
 #: Cases also run in a subprocess, to see the real stderr (tifffile's log lines included).
 IN_SUBPROCESS = {"toml_syntax", "video_truncated", "video_broken_page_chain",
                  "output_damaged_status", "model_corrupt_chunk"}
@@ -56,6 +57,17 @@ def test_bad_input_gives_one_line_and_changes_nothing(case, job_copy, capsys):
     _check_line(one_error_line(err, argv[0]), case)
     assert snapshot_changes(before, tree_snapshot(job_copy.folder)) == {
         "created": [], "deleted": [], "modified": []}
+
+
+@pytest.mark.parametrize("case", WARNING_CASES, ids=[c.name for c in WARNING_CASES])
+def test_odd_input_gives_one_warning_line(case, job_copy, capsys):
+    argv = case.setup(job_copy)
+    capsys.readouterr()
+    assert main(argv) == case.exit_status
+    _out, err = capsys.readouterr()
+    warned = [line for line in err.splitlines() if line.startswith("warning: ")]
+    assert len(warned) == 1 and "Traceback" not in err, err
+    _check_line(warned[0], case)
 
 
 @pytest.mark.parametrize("name", sorted(IN_SUBPROCESS))
@@ -178,7 +190,7 @@ def test_newer_store_is_never_wiped(job_copy):
     (case,) = (c for c in CASES if c.name == "output_newer_format")
     case.setup(job_copy)
     before = tree_snapshot(job_copy.folder / "out.zarr")
-    with pytest.raises(OSError, match="output store format 2"):
+    with pytest.raises(OSError, match="output store format 3"):
         run_job(load_job(job_copy.folder / "job.toml"))
     assert tree_snapshot(job_copy.folder / "out.zarr") == before
 

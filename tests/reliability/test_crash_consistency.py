@@ -45,9 +45,10 @@ def crash_job(tmp_path_factory) -> dict:
     model.save(folder / "model")
     tifffile.imwrite(folder / "raw.tif", bead_video(model, N_FRAMES, np.random.default_rng(3)),
                      photometric="minisblack")
+    tifffile.imwrite(folder / "dark.tif", np.full((24, 24), 100, np.uint16))  # its offset
     document = {
         "model": {"path": "model"},
-        "video": {"path": "raw.tif"},
+        "video": {"path": "raw.tif", "dark": "dark.tif"},
         "solver": {"method": "admm", "iterations": 40, "tv": 1e-3, "tol": 0.0,
                    "chain_frames": 2},
         "output": {"path": "reference.zarr", "time_interval_s": 0.1, "max_projections": True},

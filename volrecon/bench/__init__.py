@@ -4,7 +4,8 @@ Every figure is a ratio or a comparison measured in one run, because absolute ti
 shared machines are noisy: per-iteration time against the FFT lower bound
 (:mod:`volrecon.bench.iteration`) and, with ``--general``, time to a 1 % objective gap against
 PyLops + PyProximal (:mod:`volrecon.bench.general`). ``--pipeline`` times a whole job on a
-simulated video instead (:mod:`volrecon.bench.pipeline`).
+simulated video instead (:mod:`volrecon.bench.pipeline`); ``--temporal`` measures the
+temporal prior's gain and cost (:mod:`volrecon.bench.temporal`).
 """
 
 from __future__ import annotations
@@ -45,6 +46,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="--pipeline: frames of the simulated video (default 240)")
     parser.add_argument("--scheduler", choices=("threads", "processes"), action="append",
                         help="--pipeline: dask scheduler (repeatable); default both")
+    parser.add_argument("--temporal", action="store_true",
+                        help="the temporal prior on a dim drifting video and across a cut, "
+                             "against per-frame solves (a few minutes)")
     parser.add_argument("--all", action="store_true",
                         help="every figure: the sizes of the README table and all of the above")
     parser.add_argument("--json", action="store_true", help="print the figures as JSON")
@@ -69,6 +73,16 @@ def run(args: argparse.Namespace) -> int:
         [(int(z), int(y), int(x)) for z, y, x in args.size] if args.size else default)
     if args.pipeline:
         return _run_pipeline(args, sizes[0])
+    if args.temporal:
+        from volrecon.bench import temporal
+
+        result = temporal.run(threads=args.threads or 1)
+        if args.json:
+            json.dump({"temporal": result}, sys.stdout, indent=1)
+            sys.stdout.write("\n")
+        else:
+            temporal.print_report(result)
+        return 0
     get_backend(args.device, threads=args.threads)  # fail early with a clear message
     from volrecon.bench import overhead
 

@@ -4,13 +4,19 @@ from __future__ import annotations
 
 import math
 import os
+import warnings
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-from volrecon.calibrate.cleaning import CleanedStack, bin_pixels, clean_psf_stack
+from volrecon.calibrate.cleaning import (
+    CleanedStack,
+    bin_pixels,
+    clean_psf_stack,
+    normalization_option,
+)
 from volrecon.calibrate.compression import factor_psf_stack, stack_singular_values
 from volrecon.calibrate.metrics import autocorrelation_fwhm, axial_resolution, depth_correlation
 from volrecon.calibrate.registration import estimate_shift, shift_image
@@ -20,6 +26,7 @@ from volrecon.errors import (
     DataError,
     ModelStoreError,
     ShapeError,
+    UnitWarning,
     VolreconError,
 )
 from volrecon.io.files import replacing
@@ -67,7 +74,8 @@ def calibrate_stack(
     energy: float = 0.999,
     hot_pixel_sigma: float | None = 6.0,
     support_sigma: float | None = 3.0,
-    normalize: bool = True,
+    normalization: str = "stack",
+    normalize: bool | None = None,
     dtype: Any = np.float32,
     source: str | None = None,
 ) -> Calibration:
@@ -108,9 +116,14 @@ def calibrate_stack(
     support_sigma : float or None
         Threshold of the background mask (:func:`~volrecon.calibrate.mask_background`);
         None keeps every pixel.
-    normalize : bool
-        Scale every plane to unit sum (the relative throughput goes to the report and the
-        model metadata). False keeps camera counts.
+    normalization : {"stack", "planes", "none"}
+        "stack" (default): the model keeps the instrument's relative throughput per depth,
+        each plane summing to its measured throughput (the brightest plane of all positions
+        to 1). "planes" (``--normalise-planes``): every plane sums to 1. "none": camera
+        counts. The measured throughput goes to the report and the model's metadata in
+        every case.
+    normalize : bool, optional
+        Deprecated: True is ``normalization="planes"``, False ``normalization="none"``.
     dtype : {float32, float64}
         Model precision.
     source : str, optional
@@ -147,6 +160,7 @@ def calibrate_stack(
     """
     geometry = _check_options(depth_step_um, pixel_size_um, depth_start_um, bin_factor,
                               wavelength_nm, energy, rank)
+    normalization = normalization_option(normalization, normalize)
     raw = np.asarray(stack)
     if raw.ndim == 2:
         raise ShapeError(f"the bead scan is a single 2-D image of shape {raw.shape}; save the "
@@ -177,12 +191,18 @@ def calibrate_stack(
             cleaned.append(clean_psf_stack(scans[k], dark_yx=dark, crop_yx=crop_yx,
                                            bin_factor=bin_factor,
                                            hot_pixel_sigma=hot_pixel_sigma,
-                                           support_sigma=support_sigma, normalize=normalize))
+                                           support_sigma=support_sigma,
+                                           normalization=normalization))
         except (DataError, ShapeError) as exc:
             if scans.shape[0] == 1:
                 raise
             raise type(exc)(f"field position {k}: {exc}") from exc
     sums = np.stack([c.plane_sums for c in cleaned])
+    if normalization == "stack" and len(cleaned) > 1:
+        # Each scan was scaled to its own brightest plane; keep the positions' relative
+        # throughput too (vignetting), relative to the brightest plane of all.
+        cleaned = [replace(c, psf_zyx=(c.psf_zyx * np.float32(c.plane_sums.max() / sums.max())))
+                   for c in cleaned]
     common = {
         "source": source,
         "depth_step_um": geometry.depth_step_um,
@@ -197,7 +217,7 @@ def calibrate_stack(
         "support_fraction": float(np.mean([c.support_fraction for c in cleaned])),
         "plane_sums": sums,
         "throughput": sums / sums.max(),
-        "normalized": normalize,
+        "normalization": normalization,
     }
     if positions is None:
         return _single(cleaned[0].psf_zyx, geometry, rank, energy, dtype, common)
@@ -215,6 +235,10 @@ def _check_options(depth_step_um: float, pixel_size_um: float, depth_start_um: f
 
     step = positive(depth_step_um, "--depth-step (depth_step_um)")
     pixel = positive(pixel_size_um, "--pixel-size (pixel_size_um)")
+    _warn_if_implausible(pixel, "--pixel-size (pixel_size_um)", PLAUSIBLE_PIXEL_SIZE_UM,
+                         "a camera pixel referred to the sample plane")
+    _warn_if_implausible(step, "--depth-step (depth_step_um)", PLAUSIBLE_DEPTH_STEP_UM,
+                         "a bead-scan depth step")
     if not (isinstance(depth_start_um, int | float) and math.isfinite(depth_start_um)):
         raise ConfigError(f"--depth-start (depth_start_um) must be a finite number of "
                           f"micrometres; got {depth_start_um!r}")
@@ -230,6 +254,28 @@ def _check_options(depth_step_um: float, pixel_size_um: float, depth_start_um: f
     if rank is not None and rank != "auto" and not (isinstance(rank, int) and rank >= 1):
         raise ConfigError(f"--rank must be a positive integer or 'auto'; got {rank!r}")
     return Geometry(step, pixel * bin_factor, float(depth_start_um))
+
+
+#: Ranges that are common practice, not limits: camera pixels referred to the sample (pixel
+#: pitch / magnification) span about 0.05 µm (high-magnification microscopes) to 50 µm (macro
+#: and lensless imaging at unit magnification); bead-scan depth steps about 0.05 µm (piezo
+#: stages) to 100 µm (wide-field lensless volumes). A value outside is most often a unit
+#: mix-up (nanometres typed as micrometres), so it is warned about, not refused.
+PLAUSIBLE_PIXEL_SIZE_UM = (0.05, 50.0)
+PLAUSIBLE_DEPTH_STEP_UM = (0.05, 100.0)
+
+
+def _warn_if_implausible(value_um: float, option: str, plausible: tuple[float, float],
+                         what: str) -> None:
+    low, high = plausible
+    if low <= value_um <= high:
+        return
+    if value_um > high:
+        hint = f"if you typed nanometres, use {value_um / 1000:g}"
+    else:
+        hint = f"if you typed millimetres, use {value_um * 1000:g}"
+    warnings.warn(f"{option} is {value_um:g} um, outside the {low:g}-{high:g} um common for "
+                  f"{what}; the values are micrometres: {hint}", UnitWarning, stacklevel=3)
 
 
 def _binned_positions(positions_yx: Any, k: int, crop_yx: tuple[int, int, int, int] | None,
@@ -289,7 +335,8 @@ def _single(psf_zyx: np.ndarray, geometry: Geometry, rank: int | str | None, ene
     )
     model: PSFModel
     if factors is None:
-        model = DepthConvolutionPSF(psf_zyx, geometry, dtype=dtype)
+        model = DepthConvolutionPSF(psf_zyx, geometry, dtype=dtype,
+                                    calibration=report.model_metadata())
     else:
         model = LowRankDepthPSF(factors.kernels_ryx, factors.weights_zr, geometry, dtype=dtype,
                                 calibration=report.model_metadata())

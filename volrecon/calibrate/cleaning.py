@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass
 from typing import Any
 
@@ -11,6 +12,7 @@ import scipy.ndimage
 from volrecon.errors import ConfigError, DataError, ShapeError
 
 __all__ = [
+    "NORMALIZATIONS",
     "CleanedStack",
     "bin_pixels",
     "border_background",
@@ -26,6 +28,11 @@ _MAD_TO_SIGMA = 1.4826
 #: Footprint of the 8 neighbours of a pixel.
 _RING = np.array([[1, 1, 1], [1, 0, 1], [1, 1, 1]], dtype=bool)
 
+#: How the planes are scaled: "stack" keeps the relative throughput (brightest plane sums
+#: to 1, every other plane to its measured throughput), "planes" scales every plane to unit
+#: sum (the throughput only in the metadata), "none" keeps camera counts.
+NORMALIZATIONS = ("stack", "planes", "none")
+
 
 @dataclass(frozen=True)
 class CleanedStack:
@@ -34,7 +41,8 @@ class CleanedStack:
     Attributes
     ----------
     psf_zyx : ndarray of shape (Z, Y, X), float32
-        Cleaned planes; each sums to 1 when normalised.
+        Cleaned planes: plane ``z`` sums to ``throughput[z]`` (normalisation "stack"), to 1
+        ("planes") or keeps camera counts ("none").
     plane_sums : ndarray of shape (Z,), float64
         Light in each plane after offset subtraction, hot-pixel suppression and the
         background mask, before clipping (camera counts): an unbiased measure of throughput.
@@ -48,8 +56,8 @@ class CleanedStack:
         Number of (plane, pixel) values replaced by the median of their neighbours.
     support_fraction : float
         Fraction of (plane, pixel) values kept by the background mask (1 without it).
-    normalized : bool
-        Whether each plane was scaled to unit sum.
+    normalization : {"stack", "planes", "none"}
+        How the planes were scaled (see :data:`NORMALIZATIONS`).
     """
 
     psf_zyx: np.ndarray
@@ -59,7 +67,12 @@ class CleanedStack:
     noise_sigma: np.ndarray
     hot_pixels: int
     support_fraction: float
-    normalized: bool
+    normalization: str
+
+    @property
+    def normalized(self) -> bool:
+        """Whether the planes were scaled at all (normalisation other than "none")."""
+        return self.normalization != "none"
 
 
 def crop_pixels(stack: np.ndarray, crop_yx: tuple[int, int, int, int] | None) -> np.ndarray:
@@ -246,14 +259,14 @@ def mask_background(stack_zyx: np.ndarray, *, sigma: float = 3.0, smoothing_px: 
 
 def clean_psf_stack(stack_zyx: Any, *, dark_yx: Any = None, crop_yx: tuple[int, int, int, int]
                     | None = None, bin_factor: int = 1, hot_pixel_sigma: float | None = 6.0,
-                    support_sigma: float | None = 3.0, normalize: bool = True) -> CleanedStack:
+                    support_sigma: float | None = 3.0, normalization: str = "stack",
+                    normalize: bool | None = None) -> CleanedStack:
     """Turn a raw bead scan into clean, non-negative PSF planes.
 
     Steps, in order: crop; subtract the dark frame if given, else each plane's border
     median (:func:`border_background`); suppress hot pixels (:func:`suppress_hot_pixels`);
     zero the pixels far from any detectable light (:func:`mask_background`); clip at zero;
-    bin (:func:`bin_pixels`); scale each plane to unit sum when `normalize`, keeping the
-    relative throughput.
+    bin (:func:`bin_pixels`); scale the planes as `normalization` says.
 
     Parameters
     ----------
@@ -271,8 +284,13 @@ def clean_psf_stack(stack_zyx: Any, *, dark_yx: Any = None, crop_yx: tuple[int, 
     support_sigma : float or None
         Detection threshold of :func:`mask_background`; None keeps every pixel (noise
         clipped at zero then adds a positive pedestal).
-    normalize : bool
-        Scale each plane to unit sum (per-plane energy normalisation).
+    normalization : {"stack", "planes", "none"}
+        "stack" (default): plane ``z`` is scaled to sum to its measured relative throughput
+        (its light before clipping over that of the brightest plane), so the brightest
+        plane sums to 1 and the model keeps how much light each depth delivers. "planes":
+        every plane sums to 1 (the throughput is then only reported). "none": camera counts.
+    normalize : bool, optional
+        Deprecated: True is ``normalization="planes"``, False ``normalization="none"``.
 
     Returns
     -------
@@ -286,8 +304,15 @@ def clean_psf_stack(stack_zyx: Any, *, dark_yx: Any = None, crop_yx: tuple[int, 
         If the stack or dark holds NaN/Inf, a raw plane is all zero, or a plane has no
         light left above the background.
     ConfigError
-        If the crop, binning or threshold is invalid.
+        If the crop, binning, threshold or normalisation is invalid.
+
+    Notes
+    -----
+    With "stack", plane ``z`` is ``b_z · t_z / Σ b_z`` for the binned, clipped plane ``b_z``
+    and the throughput ``t_z = s_z / max_k s_k`` of the sums ``s_z`` before clipping: the
+    shape comes from the clipped plane, the scale from the unbiased sum.
     """
+    normalization = normalization_option(normalization, normalize)
     raw = np.asarray(stack_zyx)
     if raw.ndim != 3:
         raise ShapeError(f"the PSF stack must have 3 axes (Z, Y, X); got shape {raw.shape}")
@@ -330,11 +355,33 @@ def clean_psf_stack(stack_zyx: Any, *, dark_yx: Any = None, crop_yx: tuple[int, 
     if empty.size:
         raise DataError(f"plane {int(empty[0])} of the PSF stack has no light above the "
                         "background; check the dark frame or remove the plane")
-    if normalize:
-        binned = (binned / clipped_sums[:, None, None]).astype(np.float32)
-    return CleanedStack(psf_zyx=binned, plane_sums=sums, throughput=sums / sums.max(),
+    throughput = sums / sums.max()
+    if normalization != "none":
+        target = throughput if normalization == "stack" else np.ones(z)
+        binned = (binned * (target / clipped_sums)[:, None, None]).astype(np.float32)
+    return CleanedStack(psf_zyx=binned, plane_sums=sums, throughput=throughput,
                         background=background, noise_sigma=noise, hot_pixels=hot,
-                        support_fraction=kept, normalized=normalize)
+                        support_fraction=kept, normalization=normalization)
+
+
+def normalization_option(normalization: str, normalize: bool | None = None) -> str:
+    """Check `normalization`; map the deprecated `normalize` (with a FutureWarning).
+
+    Raises
+    ------
+    ConfigError
+        If `normalization` is not one of :data:`NORMALIZATIONS`.
+    """
+    if normalize is not None:
+        new = "planes" if normalize else "none"
+        warnings.warn(f"normalize={normalize} is deprecated; use normalization={new!r} "
+                      "(the default, 'stack', keeps each plane's relative throughput)",
+                      FutureWarning, stacklevel=3)
+        return new
+    if normalization not in NORMALIZATIONS:
+        raise ConfigError(f"normalization must be one of {', '.join(NORMALIZATIONS)}; got "
+                          f"{normalization!r}")
+    return normalization
 
 
 def _check_finite(a: np.ndarray, name: str) -> None:

@@ -22,6 +22,18 @@ _LATERAL_CRITERION = (
 )
 
 
+_NORMALIZATION_TEXT = {
+    "stack": "planes scaled together (the brightest to unit sum): relative throughput kept",
+    "planes": "planes normalised to unit sum one by one (--normalise-planes)",
+    "none": "planes kept in camera counts",
+}
+_THROUGHPUT_IN_MODEL = {
+    "stack": "; kept in the model (plane sums)",
+    "planes": "; not in the model (planes normalised one by one), only in its metadata",
+    "none": "; in the model as camera counts",
+}
+
+
 @dataclass(frozen=True)
 class CalibrationReport:
     """What calibration measured, for people (text, plots) and programs (JSON).
@@ -58,8 +70,9 @@ class CalibrationReport:
         Light per plane after cleaning, before normalisation (counts).
     throughput : ndarray of shape (K, Z)
         Plane sums relative to the brightest plane of all positions.
-    normalized : bool
-        Whether each plane was scaled to unit sum in the model.
+    normalization : {"stack", "planes", "none"}
+        How the model's planes were scaled: "stack" keeps `throughput` in the model (each
+        plane sums to it), "planes" scales each to unit sum, "none" keeps camera counts.
     singular_values : ndarray
         Singular values of the (Z × pixels) stack matrix (reference position), descending.
     rank : int
@@ -104,7 +117,7 @@ class CalibrationReport:
     support_fraction: float
     plane_sums: np.ndarray
     throughput: np.ndarray
-    normalized: bool
+    normalization: str
     singular_values: np.ndarray
     rank: int
     depth_ncc: np.ndarray
@@ -172,7 +185,7 @@ class CalibrationReport:
             "support_fraction": self.support_fraction,
             "plane_sums": _json(self.plane_sums),
             "throughput": _json(self.throughput),
-            "normalized": self.normalized,
+            "normalization": self.normalization,
             "singular_values": _json(self.singular_values),
             "rank": self.rank,
             "retained_energy": self.retained_energy,
@@ -210,11 +223,13 @@ class CalibrationReport:
                        "counts)")
         lines.append(f"cleaning: {offset_text}; {self.hot_pixels} hot-pixel values replaced; "
                      f"{self.support_fraction:.1%} of pixels kept as PSF support; "
-                     + ("planes normalised to unit sum" if self.normalized
-                        else "planes kept in camera counts"))
+                     + _NORMALIZATION_TEXT[self.normalization])
         t = self.throughput
         lines.append(f"throughput (relative to brightest plane): min {t.min():.3f} at plane "
-                     f"{int(np.unravel_index(np.argmin(t), t.shape)[-1])}, mean {t.mean():.3f}")
+                     f"{int(np.unravel_index(np.argmin(t), t.shape)[-1])}, mean {t.mean():.3f}"
+                     + _THROUGHPUT_IN_MODEL[self.normalization])
+        lines.append("  per plane: " + " ".join(f"{v:.3f}" for v in np.ravel(t)[:64])
+                     + (" ..." if t.size > 64 else ""))
         for energy in (0.99, 0.999):
             lines.append(f"rank keeping {energy:.1%} of the energy: "
                          f"{self.rank_for_energy(energy)} of {self.singular_values.size}")

@@ -1,6 +1,7 @@
-"""Input and output: lazy frame readers, camera corrections, fingerprints, OME-Zarr writing and
-reading, zarr group attributes."""
+"""Input and output: lazy frame readers, camera corrections, input sanity checks, fingerprints,
+OME-Zarr writing and reading, zarr group attributes."""
 
+from volrecon.io.checks import check_offset, find_hot_pixels, sample_frames
 from volrecon.io.correct import FrameCorrection
 from volrecon.io.files import replacing
 from volrecon.io.fingerprint import fingerprint_file, fingerprint_frames, fingerprint_tree
@@ -33,7 +34,9 @@ __all__ = [
     "TiffGlobFrames",
     "ZarrFrames",
     "capture_tifffile_log",
+    "check_offset",
     "create_ome_image",
+    "find_hot_pixels",
     "fingerprint_file",
     "fingerprint_frames",
     "fingerprint_tree",
@@ -45,6 +48,7 @@ __all__ = [
     "read_image",
     "read_tiff_stack",
     "replacing",
+    "sample_frames",
     "tiff_page_problem",
     "volume_chunks",
 ]

@@ -1,8 +1,9 @@
-"""Camera corrections applied to raw frames on ingest: dark offset, flat field, binning."""
+"""Camera corrections applied to raw frames on ingest: dark offset, hot pixels, flat field,
+binning."""
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
@@ -16,8 +17,10 @@ __all__ = ["FrameCorrection"]
 class FrameCorrection:
     """Turn raw camera frames into float32 frames on the model grid.
 
-    ``corrected = bin((raw - dark) / gain)`` where ``gain = (flat - dark) / mean(flat - dark)``
-    (the flat field normalised to mean 1), and ``bin`` averages ``binning × binning`` blocks.
+    ``corrected = bin(repair(raw - dark) / gain)`` where ``gain = (flat - dark) /
+    mean(flat - dark)`` (the flat field normalised to mean 1), ``repair`` replaces each listed
+    hot pixel by the median of its 8 neighbours (mirrored at the edges), and ``bin`` averages
+    ``binning × binning`` blocks.
 
     Attributes
     ----------
@@ -27,11 +30,21 @@ class FrameCorrection:
         Normalised flat field (mean 1); pixels are divided by it.
     binning : int
         Block size of the lateral binning (1 = none).
+    hot_pixels_yx : ndarray of shape (H, 2), int64, or None
+        Raw-grid ``(y, x)`` of the pixels to repair (see
+        :func:`volrecon.io.checks.find_hot_pixels`); None repairs none.
     """
 
     dark_yx: np.ndarray | None = None
     gain_yx: np.ndarray | None = None
     binning: int = 1
+    hot_pixels_yx: np.ndarray | None = None
+
+    def with_hot_pixels(self, hot_pixels_yx: np.ndarray) -> FrameCorrection:
+        """A copy that also repairs the raw pixels `hot_pixels_yx` (shape (H, 2))."""
+        pixels = np.array(hot_pixels_yx, dtype=np.int64).reshape(-1, 2)
+        pixels.setflags(write=False)
+        return replace(self, hot_pixels_yx=pixels)
 
     @classmethod
     def build(cls, *, dark_yx: np.ndarray | None = None, flat_yx: np.ndarray | None = None,
@@ -120,6 +133,8 @@ class FrameCorrection:
         self.check_shape(out.shape[1:], where="frames")
         if self.dark_yx is not None:
             out -= self.dark_yx
+        if self.hot_pixels_yx is not None and len(self.hot_pixels_yx):
+            _repair_pixels(out, self.hot_pixels_yx)
         if self.gain_yx is not None:
             out /= self.gain_yx
         b = self.binning
@@ -127,3 +142,21 @@ class FrameCorrection:
             t, ny, nx = out.shape
             out = out.reshape(t, ny // b, b, nx // b, b).mean(axis=(2, 4), dtype=np.float32)
         return out
+
+
+def _repair_pixels(frames_tyx: np.ndarray, pixels_yx: np.ndarray) -> None:
+    """Replace, in place, each listed pixel of every frame by the median of its 8 neighbours
+    (indices mirrored at the edges, so a border pixel never counts itself)."""
+    _, ny, nx = frames_tyx.shape
+    offsets = np.array([(dy, dx) for dy in (-1, 0, 1) for dx in (-1, 0, 1) if dy or dx])
+    ys = _mirror(pixels_yx[:, 0, None] + offsets[None, :, 0], ny)
+    xs = _mirror(pixels_yx[:, 1, None] + offsets[None, :, 1], nx)
+    neighbours = frames_tyx[:, ys, xs]  # (T, H, 8)
+    frames_tyx[:, pixels_yx[:, 0], pixels_yx[:, 1]] = np.median(neighbours, axis=-1)
+
+
+def _mirror(index: np.ndarray, n: int) -> np.ndarray:
+    if n == 1:
+        return np.zeros_like(index)
+    index = np.abs(index)
+    return np.where(index > n - 1, 2 * (n - 1) - index, index)

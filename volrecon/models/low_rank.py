@@ -136,7 +136,8 @@ class LowRankDepthPSF(PSFModel):
         mixed = (self._weights.T @ volumes.reshape(b, z, ny * nx)).reshape(b, self.rank, ny, nx)
         spectra = self.backend.rfft2(mixed, shape)
         spectra *= self._spectra
-        return self.backend.irfft2_window(spectra.sum(axis=-3), shape, self.shape_out)
+        return self.backend.irfft2_window(spectra.sum(axis=-3), shape, self.shape_out,
+                                          overwrite=True)
 
     def _adjoint(self, images: Array) -> Array:
         be = self.backend
@@ -147,7 +148,7 @@ class LowRankDepthPSF(PSFModel):
         spectrum = be.rfft2(images, shape)
         be.xp.conjugate(spectrum, out=spectrum)
         planes = be.irfft2_window(spectrum[:, None] * self._spectra, shape, self.shape_out,
-                                  reverse=True)
+                                  reverse=True, overwrite=True)
         return (self._weights @ planes.reshape(-1, self.rank, ny * nx)).reshape(
             -1, self.n_planes, ny, nx)
 

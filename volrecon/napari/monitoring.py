@@ -13,6 +13,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from volrecon.pipeline.convergence import count_convergence
 from volrecon.pipeline.status import StoreStatus, format_duration, format_status, store_status
 from volrecon.pipeline.store import STATUS_DONE, STATUS_FAILED, JobStore
 
@@ -44,10 +45,16 @@ class JobSnapshot:
         return self.status.path
 
     def summary(self) -> list[str]:
-        """Short lines for the monitor: counts, state, throughput, time left."""
+        """Short lines for the monitor: counts, state, convergence, throughput, time left."""
         s = self.status
         lines = [f"{s.done} of {s.total} frames finished, {s.failed} failed",
                  f"state: {s.state}"]
+        if self.diagnostics:
+            convergence = count_convergence(self.diagnostics)
+            lines.append(f"converged: {convergence.converged}, at the iteration cap: "
+                         f"{convergence.at_cap}")
+            if convergence.advice():
+                lines.append(f"advice: {convergence.advice()}")
         if math.isfinite(s.frames_per_second):
             lines.append(f"throughput: {s.frames_per_second:.3g} frames/s")
         if s.running:

@@ -34,6 +34,19 @@ def _check(paths: Sequence[str | os.PathLike[str]]) -> list[str]:
     return checked
 
 
+def _check_display() -> None:
+    """Refuse before Qt starts (and aborts the process) when no window can be shown."""
+    import sys
+
+    platform = os.environ.get("QT_QPA_PLATFORM", "")
+    if sys.platform.startswith("linux") and not platform and not (
+            os.environ.get("DISPLAY") or os.environ.get("WAYLAND_DISPLAY")):
+        raise ConfigError(
+            "volrecon view needs a display: none is set (DISPLAY / WAYLAND_DISPLAY); run it "
+            "on a desktop, through 'ssh -X', or under xvfb-run; 'volrecon export' and "
+            "'volrecon status' work without one")
+
+
 def open_viewer(paths: Sequence[str | os.PathLike[str]], *, monitor: bool = False,
                 show: bool = True, viewer: napari.Viewer | None = None) -> napari.Viewer:
     """A viewer (new unless given) with each store opened by the volrecon reader.
@@ -75,9 +88,10 @@ def view(paths: Sequence[str | os.PathLike[str]], *, monitor: bool = False) -> i
     InputFileError
         If a path is not a volrecon store.
     ConfigError
-        If napari is not installed.
+        If napari is not installed, or there is no display to show a window on.
     """
     checked = _check(paths)
+    _check_display()
     try:
         import napari
     except ImportError as exc:

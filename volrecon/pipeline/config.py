@@ -79,6 +79,8 @@ class JobConfig:
         Half-open video frame range.
     binning : int
         Lateral binning of raw frames.
+    hot_pixels : {"keep", "repair"}
+        What to do with hot pixels found in the video.
     time_interval_s : float
         Frame interval.
     max_projections : bool
@@ -100,6 +102,7 @@ class JobConfig:
     flat_path: Path | None = None
     frames: tuple[int, int] | None = None
     binning: int = 1
+    hot_pixels: str = "keep"
     time_interval_s: float = 1.0
     max_projections: bool = False
     compression_level: int = 3
@@ -154,7 +157,7 @@ def load_job(path: str | os.PathLike[str]) -> JobConfig:
     """
     job_path = Path(path)
     try:
-        text = job_path.read_text(encoding="utf-8")
+        text = job_path.read_text(encoding="utf-8-sig")  # a byte-order mark is allowed
     except OSError as exc:
         raise ConfigError(f"{job_path}: cannot read the job file ({exc.strerror}); check the "
                           "path of the job file") from exc
@@ -213,6 +216,7 @@ def job_from_dict(document: dict[str, Any], *, base_dir: str | os.PathLike[str] 
         flat_path=_resolve(base, video["flat"]) if "flat" in video else None,
         frames=frames,
         binning=int(video["binning"]),
+        hot_pixels=str(video["hot_pixels"]),
         time_interval_s=float(output["time_interval_s"]),
         max_projections=bool(output["max_projections"]),
         compression_level=int(output["compression_level"]),

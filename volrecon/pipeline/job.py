@@ -3,7 +3,8 @@
 Order of work, so that a bad job never touches an existing store:
 
 1. :func:`prepare_job` loads the model, opens the video and the calibration images, checks the
-   frame range and the frame/model shapes, and fingerprints the inputs;
+   frame range and the frame/model shapes, checks a few sampled frames (offset against the
+   dark, hot pixels), and fingerprints the inputs;
 2. the lock beside the store is taken (a live second writer is refused, a stale lock is
    taken over);
 3. the store is created, or opened and its recorded settings compared (refused when they
@@ -23,7 +24,7 @@ import socket
 import time
 import warnings
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -31,6 +32,7 @@ import numpy as np
 
 from volrecon.errors import (
     ConfigError,
+    HotPixelWarning,
     InputFileError,
     OutputWriteError,
     ShapeError,
@@ -38,6 +40,7 @@ from volrecon.errors import (
     VolreconError,
     VolreconWarning,
 )
+from volrecon.io.checks import check_offset, find_hot_pixels, sample_frames
 from volrecon.io.correct import FrameCorrection
 from volrecon.io.fingerprint import fingerprint_file, fingerprint_frames, fingerprint_tree
 from volrecon.io.frames import FrameSource, open_frames, read_image
@@ -76,11 +79,13 @@ class PreparedJob:
     source : FrameSource
         The raw video.
     correction : FrameCorrection
-        Dark, flat and binning.
+        Dark, hot pixels to repair, flat and binning.
     first_frame, n_frames : int
         Video frames ``first_frame : first_frame + n_frames`` are reconstructed.
     fingerprints : dict of str to str
         ``"model.path"``, ``"video.path"`` and, if given, ``"video.dark"``/``"video.flat"``.
+    hot_pixels_yx : ndarray of shape (H, 2), int64
+        Hot pixels found in the sampled frames (raw grid), repaired or not.
     """
 
     job: JobConfig
@@ -90,6 +95,7 @@ class PreparedJob:
     first_frame: int
     n_frames: int
     fingerprints: dict[str, str]
+    hot_pixels_yx: np.ndarray = field(default_factory=lambda: np.zeros((0, 2), np.int64))
 
 
 @dataclass(frozen=True)
@@ -166,10 +172,21 @@ def prepare_job(job: JobConfig) -> PreparedJob:
         images the frames.
     ConfigError
         If the frame range is outside the video.
+    DataError
+        If the sampled frames lie mostly below the dark frame (a dark of other camera
+        settings).
     BackendError
         If ``device = "gpu"`` and no GPU can be used.
     OutputWriteError
         If the output path lies below a regular file.
+
+    Warns
+    -----
+    FrameOffsetWarning
+        If the offset looks subtracted twice, too high, or not subtracted (no dark for a
+        camera with an offset); see :func:`volrecon.io.checks.check_offset`.
+    HotPixelWarning
+        If the sampled frames hold hot pixels and ``[video] hot_pixels = "keep"``.
     """
     from volrecon.backend import get_backend
     from volrecon.models.base import PSFModel
@@ -201,6 +218,7 @@ def prepare_job(job: JobConfig) -> PreparedJob:
                 f"{source.description} has {source.n_frames}; use stop <= {source.n_frames}"
             )
         n_frames = stop - first
+    correction, hot = _check_frames(job, source, correction, first, n_frames)
     if job.compute.device != "cpu":
         get_backend(job.compute.device)
     _check_output_location(job)
@@ -211,7 +229,31 @@ def prepare_job(job: JobConfig) -> PreparedJob:
     if job.flat_path is not None:
         fingerprints["video.flat"] = fingerprint_file(job.flat_path)
     return PreparedJob(job=job, model=model, source=source, correction=correction,
-                       first_frame=first, n_frames=n_frames, fingerprints=fingerprints)
+                       first_frame=first, n_frames=n_frames, fingerprints=fingerprints,
+                       hot_pixels_yx=hot)
+
+
+def _check_frames(job: JobConfig, source: FrameSource, correction: FrameCorrection,
+                  first: int, n_frames: int) -> tuple[FrameCorrection, np.ndarray]:
+    """Check a few frames spread over the job's range before any work (offset, hot pixels);
+    returns the correction (repairing the hot pixels if asked) and the hot pixels found."""
+    frames = sample_frames(source, first, n_frames)
+    check_offset(frames, correction.dark_yx, video=source.description,
+                 dark=None if job.dark_path is None else str(job.dark_path))
+    hot = find_hot_pixels(frames, dark_yx=correction.dark_yx)
+    if len(hot) and job.hot_pixels == "repair":
+        logger.info("%s: repairing %d hot pixels", source.description, len(hot))
+        return correction.with_hot_pixels(hot), hot
+    if len(hot):
+        y, x = (int(v) for v in hot[0])
+        warnings.warn(
+            f"{source.description}: {len(hot)} hot pixel{'s' if len(hot) > 1 else ''} (fixed "
+            f"single-pixel spikes far above all neighbours, first at y={y}, x={x}) stay in "
+            "every frame and each becomes a false bright spot in the volumes; set [video] "
+            "hot_pixels = \"repair\" (median of the 8 neighbours)"
+            + (" or give a [video] dark" if job.dark_path is None else ""),
+            HotPixelWarning, stacklevel=3)
+    return correction, hot
 
 
 def _check_output_location(job: JobConfig) -> None:
@@ -378,6 +420,8 @@ def _create_store(prepared: PreparedJob, comparable: dict[str, Any]) -> JobStore
         "video": {"path": os.fspath(job.video_path), "first_frame": prepared.first_frame,
                   "n_frames": prepared.n_frames,
                   "frame_shape_yx": list(prepared.source.shape[1:]),
+                  "hot_pixels_yx": prepared.hot_pixels_yx.tolist(),
+                  "hot_pixels": job.hot_pixels,
                   "dtype": prepared.source.dtype.name},
         "model": {"path": os.fspath(job.model_path), "kind": model.kind,
                   "shape_zyx": list(model.shape_in),
@@ -449,6 +493,10 @@ def _run(prepared: PreparedJob, store: JobStore, *,
 
     outcome = "error"
     failure: BaseException | None = None
+    if progress is not None:  # the bar (or log line) from the start, not after a first task
+        progress(JobProgress(done=done_before, done_at_start=done_before, total=total,
+                             failed=failed, computed=0, elapsed_s=0.0, frames_per_second=0.0,
+                             seconds_left=float("inf")))
     try:
         execute_tasks(tasks, context, job.compute, on_result, client=client)
         outcome = "complete" if counts["done"] == total else "stopped"

@@ -4,9 +4,9 @@
 loop; every caller (jobs, estimate, tuning, previews, benchmarks) goes through them.
 """
 
-from volrecon.solvers.chain import FrameResult, solve_chain, solve_frame
+from volrecon.solvers.chain import FrameResult, plan_windows, solve_chain, solve_frame
 from volrecon.solvers.info import SolveInfo, SolverState
-from volrecon.solvers.reconstruct import objective, reconstruct
+from volrecon.solvers.reconstruct import objective, reconstruct, reconstruct_window
 from volrecon.solvers.settings import METHODS, SolverSettings
 from volrecon.solvers.tv import tv_value
 
@@ -17,7 +17,9 @@ __all__ = [
     "SolverSettings",
     "SolverState",
     "objective",
+    "plan_windows",
     "reconstruct",
+    "reconstruct_window",
     "solve_chain",
     "solve_frame",
     "tv_value",

@@ -65,7 +65,7 @@ if TYPE_CHECKING:
     from volrecon.backend import Backend
     from volrecon.models.base import PSFModel
 
-__all__ = ["solve_admm"]
+__all__ = ["solve_admm", "solve_admm_window", "temporal_eigenvalues"]
 
 #: Residual balancing: change a penalty when one residual exceeds the other this many times.
 BALANCE_RATIO = 5.0
@@ -79,13 +79,14 @@ INITIAL_MU3 = 1.0
 
 
 class _Problem:
-    """Constants of one solve: spectra, the lateral Laplacian, the frame, on one backend."""
+    """Constants of one solve: spectra, the lateral Laplacian, the frames, on one backend."""
 
-    def __init__(self, model: PSFModel, frame: Array, tv: float) -> None:
+    def __init__(self, model: PSFModel, frames: Array, tv: float) -> None:
         be: Backend = model.backend
         xp = be.xp
         self.be, self.xp = be, xp
         self.shape = model.padded_shape
+        self.n_frames = int(frames.shape[0])
         self.nz = model.n_planes
         self.ny, self.nx = model.shape_out
         self.dtype = model.dtype
@@ -111,27 +112,37 @@ class _Problem:
             kx = np.fft.rfftfreq(px)[None, :]
             lateral = (2 - 2 * np.cos(2 * np.pi * ky)) + (2 - 2 * np.cos(2 * np.pi * kx))
             self.lateral = xp.asarray(lateral.astype(self.dtype))
-        self.sensor = (slice(0, self.ny), slice(0, self.nx))
-        self.b_padded = xp.zeros(self.shape, dtype=self.dtype)
-        self.b_padded[self.sensor] = frame
+        self.sensor = (slice(None), slice(0, self.ny), slice(0, self.nx))
+        self.b_padded = xp.zeros((self.n_frames, *self.shape), dtype=self.dtype)
+        self.b_padded[self.sensor] = frames
 
     def norm_mt(self, x_hat: Array) -> float:
-        """‖Mᵀx‖ from the half spectrum of x, by Parseval."""
+        """‖Mᵀx‖ from the half spectrum of x (one or several frames), by Parseval."""
         energy = (self.half_weight * self.sum_abs2 * (x_hat.real**2 + x_hat.imag**2)).sum()
         return math.sqrt(max(float(energy), 0.0))
 
 
 def _forward_padded(p: _Problem, v: Array, planes: int = 8) -> Array:
-    """M v on the padded grid, a few planes at a time (no Z-sized spectra)."""
+    """M v on the padded grid for (W, Z, Py, Px) volumes, a few planes at a time."""
     be = p.be
-    mv_hat = p.xp.zeros(p.h.shape[1:], dtype=p.h.dtype)
-    for z0 in range(0, p.nz, planes):
-        mv_hat += (be.rfft2(v[z0 : z0 + planes], p.shape) * p.h[z0 : z0 + planes]).sum(axis=0)
-    return be.irfft2(mv_hat, p.shape).astype(p.dtype, copy=False)
+    out = p.xp.empty((v.shape[0], *p.shape), dtype=p.dtype)
+    for t in range(v.shape[0]):
+        mv_hat = p.xp.zeros(p.h.shape[1:], dtype=p.h.dtype)
+        for z0 in range(0, p.nz, planes):
+            mv_hat += (be.rfft2(v[t, z0 : z0 + planes], p.shape)
+                       * p.h[z0 : z0 + planes]).sum(axis=0)
+        out[t] = be.irfft2(mv_hat, p.shape)
+    return out
 
 
 def _norm(xp: Any, a: Array) -> float:
     return math.sqrt(squared_norm(a))
+
+
+def temporal_eigenvalues(n_frames: int) -> np.ndarray:
+    """Eigenvalues ``2 − 2cos(πk/W)`` of DᵀD, D the first difference along a window of W
+    frames with Neumann ends; its eigenvectors are the orthonormal DCT-II basis."""
+    return 2.0 - 2.0 * np.cos(np.pi * np.arange(n_frames) / n_frames)
 
 
 def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1: float,
@@ -145,13 +156,55 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
     or, with ``stop_change > 0``, after the first iteration from the third on whose relative
     change of the volume ``c_k = ‖w_k − w_{k−1}‖ / ‖w_k‖`` is at most `stop_change` and
     smaller than ``c_{k−1}`` (measured in the fused w-step, so at no extra pass). `compiled`
-    picks the step implementation (default: numba on the CPU, arrays on the GPU)."""
-    p = _Problem(model, frame, tv)
+    picks the step implementation (default: numba on the CPU, arrays on the GPU). One frame
+    is a window of one (:func:`solve_admm_window` without a temporal prior)."""
+    start = init
+    if isinstance(init, SolverState):
+        start = SolverState(init.method, {k: a[None] for k, a in init.arrays.items()},
+                            init.penalties)
+    elif init is not None:
+        start = init[None]
+    volumes, it, converged, state, history = solve_admm_window(
+        frame[None], model, iterations=iterations, tv=tv, l1=l1, tol=tol,
+        tv_z_weight=tv_z_weight, temporal_weight=0.0, init=start, stop_change=stop_change,
+        check_every=check_every, compiled=compiled)
+    single = SolverState("admm", {k: a[0] for k, a in state.arrays.items()}, state.penalties)
+    return volumes[0], it, converged, single, history
+
+
+def solve_admm_window(frames: Array, model: PSFModel, *, iterations: int, tv: float,
+                      l1: float, tol: float, tv_z_weight: float, temporal_weight: float,
+                      init: Array | SolverState | None, stop_change: float = 0.0,
+                      check_every: int = 5, compiled: bool | None = None,
+                      ) -> tuple[Array, int, bool, SolverState, dict[str, list[float]]]:
+    """Run ADMM on a window of W consecutive frames ``(W, Y, X)`` solved together.
+
+    The objective is the sum of the frames' objectives plus
+    ``temporal_weight · ½ Σ_t ‖v_{t+1} − v_t‖²`` (Neumann ends: the window's first and last
+    frames have one neighbour). The quadratic temporal term joins the exact v-update: an
+    orthonormal DCT-II along the window diagonalises DᵀD (eigenvalues
+    :func:`temporal_eigenvalues`), so temporal frequency k solves today's per-frame system with
+    ``μ₃ + temporal_weight·λ_k`` in place of μ₃ — two small real transforms along the window per
+    iteration beside the 2-D FFTs. Penalties are shared by the window; residuals and the
+    relative change are taken over all its frames. Returns volumes ``(W, Z, Y, X)`` and a
+    state with a leading window axis; `init` is the state of the window before (its last
+    frame starts every frame of this one) or volumes ``(W, Z, Y, X)``.
+    """
+    n_frames = int(frames.shape[0])
+    p = _Problem(model, frames, tv)
     be, xp = p.be, p.xp
     steps = steps_for(be, compiled=compiled)
     shape, dt = p.shape, p.dtype
     nz, ny, nx = p.nz, p.ny, p.nx
     sensor = p.sensor
+    temporal = temporal_weight > 0 and n_frames > 1
+    shifts = (temporal_weight * temporal_eigenvalues(n_frames)).tolist() if temporal \
+        else [0.0] * n_frames
+
+    def window(a: Array) -> Array:  # the last frame of the state before, for every frame
+        if n_frames == 1:
+            return a[-1:].astype(dt, copy=True)
+        return xp.repeat(a[-1:].astype(dt, copy=False), n_frames, axis=0)
 
     mean_gain = float(p.sum_abs2.mean())
     scale = mean_gain if mean_gain > 0 else 1.0
@@ -159,48 +212,46 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
     # Implicit scaled duals: wmg = v − γ and ymb = ∇v − β (see admm_steps).
     gamma: Any = None
     beta: Any = None
+    mv: Any = None
     if isinstance(init, SolverState):
-        v = init.arrays["v"].astype(dt, copy=True)
-        alpha = init.arrays["alpha"].astype(dt, copy=True)
-        gamma = init.arrays["gamma"]
+        v = window(init.arrays["v"])
+        alpha = window(init.arrays["alpha"])
+        gamma = window(init.arrays["gamma"])
         beta = init.arrays.get("beta") if p.use_tv else None
+        beta = None if beta is None else window(beta)
+        if "mv" in init.arrays:  # M v of the start, the last of the solve before
+            mv = window(init.arrays["mv"])
         mu = list(init.penalties)
         if not p.use_tv:
             mu[1] = 0.0
         elif mu[1] == 0.0:
             mu[1] = scale
     else:
-        v = xp.zeros((nz, *shape), dtype=dt)
-        alpha = xp.zeros(shape, dtype=dt)
+        v = xp.zeros((n_frames, nz, *shape), dtype=dt)
+        alpha = xp.zeros((n_frames, *shape), dtype=dt)
         if init is not None:
-            v[:, :ny, :nx] = init
+            v[:, :, :ny, :nx] = init
     wmg = v.copy() if gamma is None else v - gamma
     ymb: Any = None
     if p.use_tv:
-        ymb = xp.zeros((3, *v.shape), dtype=dt) if beta is None else beta.astype(dt, copy=True)
-        steps.gradient_minus(v, ymb, tv_z_weight)
+        ymb = xp.zeros((n_frames, 3, *v.shape[1:]), dtype=dt) if beta is None else beta
+        for t in range(n_frames):
+            steps.gradient_minus(v[t], ymb[t], tv_z_weight)
     del gamma, beta
-
-    # M v of the start: carried in the state of the frame before (it is the last Mv of that
-    # solve's loop), computed for a plain volume, zero for a cold start.
-    if isinstance(init, SolverState) and "mv" in init.arrays:
-        mv = init.arrays["mv"]  # never written in place: the state stays reusable
-    elif init is not None:
-        mv = _forward_padded(p, v)
-    else:
-        mv = xp.zeros(shape, dtype=dt)
+    if mv is None:
+        mv = _forward_padded(p, v) if init is not None else xp.zeros_like(alpha)
     rhs: Any = xp.empty_like(v) if p.use_tv else None
     # w of the iteration before a check, then of the check itself (one buffer: the w-step
-    # returns ‖w − w_prev‖² before overwriting); ρ·y of the same two iterations, by parity
+    # returns ‖w − w_prev‖² before overwriting); ρ·y of the same two iterations, by parity.
     # Only a check at the first iteration reads a "previous" w or y never written (as zero).
     fresh = xp.zeros_like if iterations == 1 or check_every == 1 else xp.empty_like
     w = fresh(v)
     y_saved: list[Any] = [fresh(ymb), fresh(ymb)] if p.use_tv else [None, None]
     x_denominator = xp.full(shape, 1.0 / mu[0], dtype=dt)
-    x_denominator[sensor] = 1.0 / (1.0 + mu[0])
-    x = xp.zeros(shape, dtype=dt)  # read as the previous x by a check at iteration 1
-    x_old = xp.empty(shape, dtype=dt)
-    x_minus_alpha = xp.empty(shape, dtype=dt)  # relaxed x minus α; then α = Mv − this
+    x_denominator[sensor[1:]] = 1.0 / (1.0 + mu[0])
+    x = xp.zeros_like(alpha)  # read as the previous x by a check at iteration 1
+    x_old = xp.empty_like(alpha)
+    x_minus_alpha = xp.empty_like(alpha)  # relaxed x minus α; then α = Mv − this
     rho = RELAXATION
     track = stop_change > 0  # compare w with the previous iterate every iteration
     last_change = math.inf
@@ -219,14 +270,19 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
         x *= mu[0]
         x += p.b_padded
         x *= x_denominator
-        # y-update: group shrinkage, folded into the implicit dual ymb
-        if p.use_tv:
-            steps.tv_dual_step(v, ymb, None if slot is None else y_saved[slot], tv / mu[1],
-                               rho, tv_z_weight)
-        # w-update and the spatial right-hand side μ₃(ŵ − γ) + μ₂∇ᵀ(ŷ − β)
-        w_change, w_energy = steps.w_step(
-            v, wmg, rhs, ymb, w if track or slot is not None else None, l1 / mu[2], rho,
-            mu[1], mu[2], tv_z_weight, (ny, nx), compare=check or track)
+        w_change = w_energy = 0.0
+        for t in range(n_frames):
+            # y-update: group shrinkage, folded into the implicit dual ymb
+            if p.use_tv:
+                steps.tv_dual_step(v[t], ymb[t], None if slot is None else y_saved[slot][t],
+                                   tv / mu[1], rho, tv_z_weight)
+            # w-update and the spatial right-hand side μ₃(ŵ − γ) + μ₂∇ᵀ(ŷ − β)
+            change_t, energy_t = steps.w_step(
+                v[t], wmg[t], None if rhs is None else rhs[t], None if ymb is None else ymb[t],
+                w[t] if track or slot is not None else None, l1 / mu[2], rho, mu[1], mu[2],
+                tv_z_weight, (ny, nx), compare=check or track)
+            w_change += change_t
+            w_energy += energy_t
         change = math.sqrt(w_change / max(w_energy, 1e-30)) if track else math.inf
         # Settled: small and falling. After a warm start the change first grows for several
         # iterations while the new frame's data spreads through the splits.
@@ -236,16 +292,27 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
         xp.multiply(mv, 1 - rho, out=x_minus_alpha)
         x_minus_alpha += rho * x
         x_minus_alpha -= alpha
-        # v-update, exact in the lateral Fourier domain
-        r_hat = be.rfft2(rhs if p.use_tv else wmg, shape)
-        x_hat = be.rfft2(x_minus_alpha, shape)
-        x_hat *= mu[0]
-        mv_hat = steps.volume_solve(r_hat, p.h, x_hat, p.lateral, 1.0 if p.use_tv else mu[2],
-                                    mu[0], mu[1], mu[2], mu[1] * tv_z_weight * tv_z_weight)
-        v = None  # released before the inverse transform allocates the new volume
-        v = be.irfft2(r_hat, shape, overwrite=True).astype(dt, copy=False)
-        del r_hat
-        mv = be.irfft2(mv_hat, shape).astype(dt, copy=False)
+        # v-update, exact in the lateral Fourier domain and, with the prior, along the window
+        # by an orthonormal DCT-II (real, before the 2-D FFTs: the transforms commute). One
+        # frame's spectra at a time keeps the FFTs' working set that of a single frame.
+        source = rhs if p.use_tv else wmg
+        sensor_rhs = x_minus_alpha
+        if temporal:
+            source = be.fft.dct(source, type=2, axis=0, norm="ortho")
+            sensor_rhs = be.fft.dct(x_minus_alpha, type=2, axis=0, norm="ortho")
+        for k in range(n_frames):
+            r_hat = be.rfft2(source[k], shape)
+            x_hat = be.rfft2(sensor_rhs[k], shape)
+            x_hat *= mu[0]
+            mv_hat = steps.volume_solve(
+                r_hat, p.h, x_hat, p.lateral, 1.0 if p.use_tv else mu[2], mu[0], mu[1],
+                mu[2] + shifts[k], mu[1] * tv_z_weight * tv_z_weight)
+            v[k] = be.irfft2(r_hat, shape, overwrite=True)
+            mv[k] = be.irfft2(mv_hat, shape)
+        del source, r_hat
+        if temporal:
+            v = be.fft.idct(v, type=2, axis=0, norm="ortho", overwrite_x=True)
+            mv = be.fft.idct(mv, type=2, axis=0, norm="ortho", overwrite_x=True)
         xp.subtract(mv, x_minus_alpha, out=alpha)
         if not check:
             if settled:
@@ -253,7 +320,8 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
                 break
             continue
         # residuals, normalised (Wohlberg 2017 §II); y is stored as ρ·y
-        vw, vv, ww, gg = steps.w_norms(v, w, wmg)
+        norms = [steps.w_norms(v[t], w[t], wmg[t]) for t in range(n_frames)]
+        vw, vv, ww, gg = (sum(n[j] for n in norms) for j in range(4))
         r1 = _norm(xp, mv - x)
         s1 = mu[0] * p.norm_mt(be.rfft2(x - x_old, shape))
         rs = [r1, math.sqrt(vw)]
@@ -261,8 +329,9 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
         primal_ref = [max(_norm(xp, mv), _norm(xp, x)), math.sqrt(max(vv, ww))]
         dual_ref = [mu[0] * p.norm_mt(be.rfft2(alpha, shape)), mu[2] * math.sqrt(gg)]
         if p.use_tv:
-            gy, g2, y2, dy, db = steps.tv_norms(v, y_saved[it % 2], y_saved[(it - 1) % 2], ymb,
-                                                  tv_z_weight, rho)
+            tv_sums = [steps.tv_norms(v[t], y_saved[it % 2][t], y_saved[(it - 1) % 2][t],
+                                      ymb[t], tv_z_weight, rho) for t in range(n_frames)]
+            gy, g2, y2, dy, db = (sum(n[j] for n in tv_sums) for j in range(5))
             rs.append(math.sqrt(gy))
             ss.append(mu[1] * math.sqrt(dy))
             primal_ref.append(math.sqrt(max(g2, y2)))
@@ -301,19 +370,22 @@ def solve_admm(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1:
                 wmg *= factor
                 wmg += (1 - factor) * v
             else:  # ymb → β, scale, → ymb
-                steps.gradient_minus(v, ymb, tv_z_weight)
+                for t in range(n_frames):
+                    steps.gradient_minus(v[t], ymb[t], tv_z_weight)
                 ymb *= factor
-                steps.gradient_minus(v, ymb, tv_z_weight)
+                for t in range(n_frames):
+                    steps.gradient_minus(v[t], ymb[t], tv_z_weight)
         if changed:
             x_denominator[...] = 1.0 / mu[0]
-            x_denominator[sensor] = 1.0 / (1.0 + mu[0])
+            x_denominator[sensor[1:]] = 1.0 / (1.0 + mu[0])
 
     xp.subtract(v, wmg, out=wmg)  # wmg is not needed any more: it becomes γ
     arrays = {"v": v, "alpha": alpha, "gamma": wmg, "mv": mv}
     if p.use_tv:
-        steps.gradient_minus(v, ymb, tv_z_weight)  # ymb is not needed any more: it becomes β
+        for t in range(n_frames):  # ymb is not needed any more: it becomes β
+            steps.gradient_minus(v[t], ymb[t], tv_z_weight)
         arrays["beta"] = ymb
     state = SolverState("admm", arrays, tuple(mu))
-    # The returned volume is the feasible split w (≥ 0, zero off the field).
-    volume = xp.ascontiguousarray(w[:, :ny, :nx])
-    return volume, it, converged, state, history
+    # The returned volumes are the feasible split w (≥ 0, zero off the field).
+    volumes = xp.ascontiguousarray(w[:, :, :ny, :nx])
+    return volumes, it, converged, state, history

@@ -9,7 +9,7 @@ from typing import TYPE_CHECKING, Any, Literal, overload
 import numpy as np
 
 from volrecon.errors import ConfigError, DataError, ShapeError
-from volrecon.solvers.admm import solve_admm
+from volrecon.solvers.admm import solve_admm, solve_admm_window
 from volrecon.solvers.fista import solve_fista
 from volrecon.solvers.info import SolveInfo, SolverState
 from volrecon.solvers.norms import squared_norm
@@ -22,7 +22,7 @@ if TYPE_CHECKING:
     from volrecon.models.base import PSFModel
 
 __all__ = ["AUTO_COLD_STOP_CHANGE", "AUTO_ITERATION_CAP", "AUTO_STOP_CHANGE", "METHODS",
-           "objective", "reconstruct"]
+           "objective", "reconstruct", "reconstruct_window"]
 
 _SOLVERS = {"admm": solve_admm, "fista": solve_fista, "rl": solve_rl}
 
@@ -165,6 +165,103 @@ def reconstruct(
     >>> volume.shape, round(float(volume.sum()), 2)
     ((2, 16, 16), 1.0)
     """
+    model, iterations, stop_change = _checked(model, method, iterations, tv=tv, l1=l1, tol=tol,
+                                              tv_z_weight=tv_z_weight, init=init,
+                                              device=device, threads=threads)
+    be = model.backend
+    if getattr(frame_yx, "ndim", None) != 2 or tuple(frame_yx.shape) != model.shape_out:
+        raise ShapeError(
+            f"frame must have shape (Y, X) = {model.shape_out} to match the model; "
+            f"got {getattr(frame_yx, 'shape', None)}"
+        )
+    frame = be.asarray(frame_yx, dtype=model.dtype)
+    if not bool(be.xp.isfinite(frame).all()):
+        raise DataError("frame contains NaN or Inf pixels; repair or skip the frame")
+    start = _check_init(init, model, method)
+    t0 = time.perf_counter()
+    options: dict[str, Any] = {}
+    if method == "admm":
+        options["stop_change"] = stop_change
+    else:  # their `tol` is already a bound on the relative change of the volume
+        tol = max(tol, stop_change)
+    volume, n_iter, converged, state, history = _SOLVERS[method](
+        frame, model, iterations=int(iterations), tv=float(tv), l1=float(l1), tol=float(tol),
+        tv_z_weight=float(tv_z_weight), init=start, **options)
+    if not return_info:
+        return volume
+    seconds = time.perf_counter() - t0
+    info = _info(volume, frame, model, method=method, iterations=n_iter, converged=converged,
+                 seconds=seconds, state=state, history=history, tv=tv, l1=l1,
+                 tv_z_weight=tv_z_weight)
+    return volume, info
+
+
+def reconstruct_window(frames_tyx: Any, model: PSFModel, *, iterations: int | str = "auto",
+                       tv: float = 0.0, l1: float = 0.0, tol: float = 1e-4,
+                       tv_z_weight: float = 1.0, temporal_weight: float = 0.0,
+                       init: SolverState | None = None,
+                       ) -> tuple[Array, list[SolveInfo]]:
+    """Reconstruct a window of consecutive frames together, with a temporal prior (ADMM).
+
+    Minimises ``Σ_t [½‖A v_t − b_t‖² + l1·Σv_t + tv·TV(v_t)] + temporal_weight·½Σ_t‖v_{t+1} −
+    v_t‖²`` over ``v_t ≥ 0`` (see :func:`volrecon.solvers.admm.solve_admm_window`); with one
+    frame or ``temporal_weight = 0`` each frame's optimum is that of :func:`reconstruct`.
+
+    Parameters
+    ----------
+    frames_tyx : ndarray of shape (W, Y, X)
+        Consecutive corrected frames, all finite.
+    model : PSFModel
+        A shift-invariant model (with transfer functions).
+    iterations, tv, l1, tol, tv_z_weight
+        As for :func:`reconstruct` (the "auto" rule runs on the whole window).
+    temporal_weight : float
+        Weight of the temporal prior, >= 0.
+    init : SolverState, optional
+        The state of the window (or frame) before: its last frame starts every frame here.
+
+    Returns
+    -------
+    volumes : ndarray of shape (W, Z, Y, X)
+    infos : list of SolveInfo
+        One per frame (objective and residual of that frame; iterations, time and state are
+        the window's, the time split evenly).
+
+    Raises
+    ------
+    ShapeError, DataError, ConfigError
+        As for :func:`reconstruct`; ConfigError also for a negative `temporal_weight`.
+    """
+    if not (math.isfinite(temporal_weight) and temporal_weight >= 0):
+        raise ConfigError(f"temporal_weight must be a finite number >= 0; got {temporal_weight!r}")
+    model, n_max, stop_change = _checked(model, "admm", iterations, tv=tv, l1=l1, tol=tol,
+                                         tv_z_weight=tv_z_weight, init=init, device=None,
+                                         threads=None)
+    be = model.backend
+    if getattr(frames_tyx, "ndim", None) != 3 or tuple(frames_tyx.shape[1:]) != model.shape_out:
+        raise ShapeError(f"frames must have shape (W, Y, X) with (Y, X) = {model.shape_out}; "
+                         f"got {getattr(frames_tyx, 'shape', None)}")
+    frames = be.asarray(frames_tyx, dtype=model.dtype)
+    if not bool(be.xp.isfinite(frames).all()):
+        raise DataError("a frame of the window contains NaN or Inf pixels; repair or skip it")
+    start = init if isinstance(init, SolverState) and init.method == "admm" else None
+    t0 = time.perf_counter()
+    volumes, n_iter, converged, state, history = solve_admm_window(
+        frames, model, iterations=n_max, tv=float(tv), l1=float(l1), tol=float(tol),
+        tv_z_weight=float(tv_z_weight), temporal_weight=float(temporal_weight), init=start,
+        stop_change=stop_change)
+    seconds = (time.perf_counter() - t0) / len(frames)
+    infos = [_info(volumes[t], frames[t], model, method="admm", iterations=n_iter,
+                   converged=converged, seconds=seconds, state=state, history=history, tv=tv,
+                   l1=l1, tv_z_weight=tv_z_weight) for t in range(len(frames))]
+    return volumes, infos
+
+
+def _checked(model: PSFModel, method: str, iterations: int | str, *, tv: float, l1: float,
+             tol: float, tv_z_weight: float, init: Any, device: str | None,
+             threads: int | None) -> tuple[PSFModel, int, float]:
+    """Validate the settings; returns the model on its device, the iteration cap and the
+    "auto" stop rule's bound on the relative change (0: none)."""
     if method not in METHODS:
         raise ConfigError(f"method must be one of {', '.join(METHODS)}; got {method!r}")
     stop_change = 0.0
@@ -188,36 +285,20 @@ def reconstruct(
             f"method 'admm' needs a shift-invariant model; {type(model).__name__} is not one — "
             "use method='fista' or 'rl'"
         )
-    be = model.backend
-    if getattr(frame_yx, "ndim", None) != 2 or tuple(frame_yx.shape) != model.shape_out:
-        raise ShapeError(
-            f"frame must have shape (Y, X) = {model.shape_out} to match the model; "
-            f"got {getattr(frame_yx, 'shape', None)}"
-        )
-    frame = be.asarray(frame_yx, dtype=model.dtype)
-    if not bool(be.xp.isfinite(frame).all()):
-        raise DataError("frame contains NaN or Inf pixels; repair or skip the frame")
-    start = _check_init(init, model, method)
-    t0 = time.perf_counter()
-    options: dict[str, Any] = {}
-    if method == "admm":
-        options["stop_change"] = stop_change
-    else:  # their `tol` is already a bound on the relative change of the volume
-        tol = max(tol, stop_change)
-    volume, n_iter, converged, state, history = _SOLVERS[method](
-        frame, model, iterations=int(iterations), tv=float(tv), l1=float(l1), tol=float(tol),
-        tv_z_weight=float(tv_z_weight), init=start, **options)
-    if not return_info:
-        return volume
-    seconds = time.perf_counter() - t0
-    # One application of A serves both the objective and the relative residual.
+    return model, int(iterations), stop_change
+
+
+def _info(volume: Any, frame: Any, model: PSFModel, *, method: str, iterations: int,
+          converged: bool, seconds: float, state: SolverState,
+          history: dict[str, list[float]], tv: float, l1: float,
+          tv_z_weight: float) -> SolveInfo:
+    """Diagnostics of one frame; one application of A serves the objective and residual."""
     residual = _residual(volume, frame, model)
     value = _objective(volume, residual, model, tv=tv, l1=l1, tv_z_weight=tv_z_weight)
-    frame_norm = math.sqrt(squared_norm(be.to_numpy(frame).astype(np.float64)))
+    frame_norm = math.sqrt(squared_norm(model.backend.to_numpy(frame).astype(np.float64)))
     relative = (math.sqrt(squared_norm(residual)) / frame_norm if frame_norm > 0
                 else float("nan"))
-    info = SolveInfo(method, n_iter, value, relative, converged, seconds, state, history)
-    return volume, info
+    return SolveInfo(method, iterations, value, relative, converged, seconds, state, history)
 
 
 def _check_init(init: Any, model: PSFModel, method: str) -> Any:

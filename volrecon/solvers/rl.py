@@ -19,8 +19,8 @@ from __future__ import annotations
 import math
 from typing import TYPE_CHECKING
 
+from volrecon.solvers.fused_steps import steps_for
 from volrecon.solvers.info import SolverState
-from volrecon.solvers.tv import gradient, gradient_adjoint
 
 if TYPE_CHECKING:
     from volrecon._typing import Array
@@ -33,9 +33,15 @@ EPSILON = 1e-12
 
 def solve_rl(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1: float,
              tol: float, tv_z_weight: float, init: Array | SolverState | None,
+             compiled: bool | None = None,
              ) -> tuple[Array, int, bool, SolverState, dict[str, list[float]]]:
-    """Run Richardson–Lucy on one frame (arrays already on the model's backend)."""
+    """Run Richardson–Lucy on one frame (arrays already on the model's backend).
+
+    `compiled` chooses the fused steps of :mod:`volrecon.solvers.fused_steps` (default: numba
+    on the CPU in float32, whole-array expressions otherwise).
+    """
     xp = model.backend.xp
+    steps = steps_for(model.backend, model.dtype, compiled=compiled)
     b = xp.maximum(frame, 0)
     sensitivity = model.adjoint(xp.ones(model.shape_out, dtype=model.dtype))
     floor = float(sensitivity.max()) * 1e-6
@@ -47,30 +53,22 @@ def solve_rl(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1: f
     else:
         level = float(b.sum()) / float(sensitivity.sum())
         v = xp.full(model.shape_in, max(level, EPSILON), dtype=model.dtype)
+    # Without TV the denominator is the same every iteration.
+    denominator = sensitivity if l1 <= 0 else sensitivity + l1
     history: dict[str, list[float]] = {"iteration": [], "change": []}
     converged = False
     it = 0
-    nz, ny, nx = model.shape_in
     for it in range(1, iterations + 1):
         blurred = model.forward(v)
         blurred += EPSILON
         ratio = xp.divide(b, blurred, out=blurred)
-        correction = model.adjoint(ratio)
-        denominator = sensitivity if (tv <= 0 and l1 <= 0) else sensitivity + l1
+        v_next = model.adjoint(ratio)  # a new array: the correction, then the next iterate
         if tv > 0:
-            padded = xp.zeros((nz, ny + 1, nx + 1), dtype=model.dtype)
-            padded[:, :ny, :nx] = v
-            g = gradient(padded, tv_z_weight)
-            norm = xp.sqrt((g * g).sum(axis=0))
-            g /= xp.maximum(norm, 1e-8 * max(float(norm.max()), 1e-30))
-            # -div(∇v/|∇v|) = ∇ᵀ(∇v/|∇v|)
-            denominator = denominator + tv * gradient_adjoint(g, tv_z_weight)[:, :ny, :nx]
-            denominator = xp.maximum(denominator, floor)
-        correction /= denominator
-        v_next = v * correction
-        delta = v_next - v
-        change = math.sqrt(float(xp.vdot(delta.ravel(), delta.ravel()).real)) / max(
-            math.sqrt(float(xp.vdot(v_next.ravel(), v_next.ravel()).real)), 1e-30)
+            change_squared, norm_squared = steps.rl_tv_update(
+                v, v_next, sensitivity, l1, tv, floor, tv_z_weight)
+        else:
+            change_squared, norm_squared = steps.rl_update(v, v_next, denominator)
+        change = math.sqrt(change_squared) / max(math.sqrt(norm_squared), 1e-30)
         v = v_next
         history["iteration"].append(it)
         history["change"].append(change)

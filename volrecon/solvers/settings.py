@@ -41,8 +41,17 @@ class SolverSettings:
     lead_in_frames : int
         Frames before a chain's first frame that are solved, not stored, so that the chain's
         first stored frame is warm too (>= 0; fewer at the job's first frame, none before it).
+    temporal_window : int
+        Frames solved together (1: each frame alone). Windows are consecutive frames inside a
+        chain, broken where the scene changes abruptly (see :func:`plan_windows`); ADMM only.
+    temporal_weight : float
+        Weight (>= 0) of the temporal prior ``½ Σ_t ‖v_{t+1} − v_t‖²`` inside a window, in
+        the units of the model and the frame like `l1` and `tv` (squared: it is quadratic).
     max_residual : float
-        A frame whose relative data residual exceeds this is recorded as failed (> 0).
+        A frame whose relative data residual ``|Av - b| / |b|`` is at least this is recorded
+        as failed (> 0). The all-zero volume scores exactly 1 (it explains none of the
+        frame), so the default 0.95 refuses it, and a volume explaining less than about 10 %
+        of the frame's squared norm (1 - 0.95²), as well as a diverged one.
 
     Raises
     ------
@@ -64,7 +73,9 @@ class SolverSettings:
     warm_start: bool = True
     chain_frames: int = 32
     lead_in_frames: int = 2
-    max_residual: float = 2.0
+    temporal_window: int = 1
+    temporal_weight: float = 0.0
+    max_residual: float = 0.95
 
     def __post_init__(self) -> None:
         if self.method not in METHODS:
@@ -78,7 +89,11 @@ class SolverSettings:
         if not self.warm_start:
             object.__setattr__(self, "chain_frames", 1)
             object.__setattr__(self, "lead_in_frames", 0)
-        for name in ("tv", "l1", "tol"):
+        _check_count("temporal_window", self.temporal_window)
+        if self.temporal_window > 1 and self.method != "admm":
+            raise ConfigError(f"temporal_window > 1 needs method = \"admm\" ({self.method} "
+                              "solves frames one at a time); set temporal_window = 1")
+        for name in ("tv", "l1", "tol", "temporal_weight"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 raise ConfigError(f"{name} must be a finite number >= 0; got {value!r}")

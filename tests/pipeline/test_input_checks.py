@@ -1,0 +1,69 @@
+"""Sanity checks of a job's frames before any work: a foreign dark refused, hot pixels found,
+warned about and (``[video] hot_pixels = "repair"``) repaired."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import tifffile
+import zarr
+from jobdata import N_FRAMES, read_volumes
+
+from volrecon.errors import ConfigError, DataError, HotPixelWarning
+from volrecon.pipeline import load_job, prepare_job, run_job
+
+HOT_YX = np.array([[5, 7], [15, 20]])
+
+
+def _hot_video(job_files):
+    hot = job_files.raw.copy()
+    hot[:, HOT_YX[:, 0], HOT_YX[:, 1]] += np.array([500, 300], np.uint16)
+    tifffile.imwrite(job_files.folder / "hot.tif", hot)
+    return hot
+
+
+def test_frames_below_the_dark_refused_before_any_write(job_files):
+    tifffile.imwrite(job_files.folder / "u8.tif", (job_files.raw // 16).astype(np.uint8))
+    tifffile.imwrite(job_files.folder / "dark16.tif", np.full((24, 24), 1600, np.uint16))
+    job = load_job(job_files.write_job(video={"path": "u8.tif", "dark": "dark16.tif"}))
+    with pytest.raises(DataError, match=r"u8\.tif: 100% of the sampled pixels are below zero "
+                                        r"after subtracting the dark .*dark16\.tif"):
+        run_job(job)
+    assert not job.output_path.exists()
+
+
+def test_hot_pixels_warned_about_with_their_count(job_files):
+    _hot_video(job_files)
+    job = load_job(job_files.write_job(video={"path": "hot.tif"}))
+    with pytest.warns(HotPixelWarning, match=r"hot\.tif: 2 hot pixels .*first at y=5, x=7.*"
+                                             r'hot_pixels = "repair"'):
+        prepared = prepare_job(job)
+    # Known truth: the two pixels put in.
+    np.testing.assert_array_equal(prepared.hot_pixels_yx, HOT_YX)
+    assert prepared.correction.hot_pixels_yx is None  # "keep": recorded, not repaired
+
+
+def test_hot_pixels_repaired_when_asked(job_files):
+    hot = _hot_video(job_files)
+    job = load_job(job_files.write_job(video={"path": "hot.tif", "hot_pixels": "repair"}))
+    result = run_job(job)  # no warning: the user asked for the repair
+    assert result.done == N_FRAMES and result.failed == 0
+    attributes = zarr.open_group(job.output_path, mode="r").attrs["volrecon"]
+    assert attributes["video"]["hot_pixels_yx"] == HOT_YX.tolist()
+    # Reference: the frames repaired by hand (median of the 8 neighbours, numpy), then
+    # reconstructed by a job without hot pixels, are what the repairing job stored.
+    fixed = hot.astype(np.float32)
+    for y, x in HOT_YX:
+        ring = np.delete(fixed[:, y - 1 : y + 2, x - 1 : x + 2].reshape(N_FRAMES, 9), 4, axis=1)
+        fixed[:, y, x] = np.median(ring, axis=1)
+    tifffile.imwrite(job_files.folder / "fixed.tif", fixed)
+    reference = load_job(job_files.write_job("ref.toml", video={"path": "fixed.tif"},
+                                             output={"path": "ref.zarr"}))
+    run_job(reference)
+    np.testing.assert_allclose(read_volumes(job.output_path), read_volumes(reference.output_path),
+                               rtol=1e-5, atol=1e-5)
+
+
+def test_hot_pixels_key_checked(job_files):
+    with pytest.raises(ConfigError, match=r"video\.hot_pixels"):
+        load_job(job_files.write_job(video={"hot_pixels": "fix"}))

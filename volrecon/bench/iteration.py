@@ -22,7 +22,7 @@ from volrecon.solvers import reconstruct
 __all__ = ["fft_lower_bound", "per_iteration_seconds", "run"]
 
 CASES = (("fista", 0.0, 1e-3), ("rl", 0.0, 0.0), ("admm", 0.0, 1e-3), ("admm", 1e-3, 0.0),
-         ("fista", 1e-3, 0.0))
+         ("fista", 1e-3, 0.0), ("rl", 1e-3, 0.0))
 
 
 def _synchronize(backend: Any) -> None:

@@ -10,9 +10,9 @@ falls below `tol`.
 Momentum restarts (``t = 1``) when ``⟨y_k − v_{k+1}, v_{k+1} − v_k⟩ > 0`` (the gradient
 scheme of O'Donoghue and Candès) and, with TV, also when the objective rises,
 ``F(v_k) > F(v_{k−1})`` (their function scheme). The second test is what keeps FISTA convergent
-with an inexact prox: measured on the 16×128² bench problem with tv = 1e-2 and 5e-2 of the
-frame's peak, the gradient test alone never fired and FISTA settled 1 % and 46 % above the
-optimum (8 inner iterations); with the function test it reaches a 1e-3 gap in 115 and 200
+with an inexact prox: on the 16×128² bench problem with tv = 1e-2 and 5e-2 of the frame's
+peak and 8 inner iterations, the gradient test alone never fired and FISTA settled 1 % and
+46 % above the optimum; with the function test it reaches a 0.1 % gap in 116 and 196
 iterations. ``F(v_k)`` costs no transform: ``A y_k`` is computed anyway, and because
 ``y_k = v_k + β_k (v_k − v_{k−1})``, ``A v_k = (A y_k + β_k A v_{k−1}) / (1 + β_k)``; the
 penalties of ``v_k`` come with the inner products of the iteration before.
@@ -42,9 +42,14 @@ if TYPE_CHECKING:
 
 __all__ = ["solve_fista"]
 
-#: Dual iterations of the TV prox per FISTA iteration (warm-started), see DEVELOPERS notes in
-#: the module docstring of :mod:`volrecon.bench.iteration` for the measurement behind it.
-TV_INNER_ITERATIONS = 4
+#: Dual iterations of the TV prox per FISTA iteration (warm-started from the previous dual).
+#: Measured on the 16×128² bench problem (``volrecon.bench.iteration.problem``), FISTA
+#: iterations to a 1 % objective gap (optimum from 3000 ADMM iterations) for 2, 3, 4, 6, 8
+#: inner iterations: tv = 1e-3 of the frame's peak 189, 188, 188, 187, 187; tv = 1e-2: 92, 65,
+#: 57, 46, 45; tv = 5e-2: 369, 257, 180, 119, 77. An inner iteration costs about 0.1 FFT
+#: bound against about 2 for the rest of the iteration, so time to the gap is within 1.3× of
+#: the best count at all three weights with 8 (2: 3.6×, 4: 2×, 6: 1.4×, all at 5e-2).
+TV_INNER_ITERATIONS = 8
 #: Relative rise of the objective that counts as a rise for the function restart: above the
 #: float32 rounding of the objective, far below the rises an inexact prox causes (≥ 1e-3).
 FUNCTION_RESTART_SLACK = 1e-6

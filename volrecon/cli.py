@@ -60,6 +60,8 @@ def _add_calibrate(sub: argparse._SubParsersAction) -> None:  # type: ignore[typ
                    help="energy fraction kept by --rank auto (default 0.999)")
     p.add_argument("--positions", metavar="P.csv", help="CSV of y_px,x_px per field position "
                    "(for a (K, Z, Y, X) scan): field-varying model")
+    p.add_argument("--lenslet-pitch", type=int, metavar="N", help="lenslet pitch in pixels "
+                   "(for a (Z, N, N, Y, X) scan of the sub-positions): lenslet model")
     p.add_argument("--normalise-planes", action="store_true",
                    help="scale every plane to unit sum (default: planes scaled together, so "
                    "the model keeps the measured relative throughput per depth)")
@@ -70,6 +72,8 @@ def _add_calibrate(sub: argparse._SubParsersAction) -> None:  # type: ignore[typ
 def _run_calibrate(args: argparse.Namespace) -> int:
     from volrecon.calibrate import calibrate_file, parse_crop, parse_rank
 
+    if args.lenslet_pitch is not None:
+        return _run_calibrate_lenslet(args)
     result = calibrate_file(
         args.stack, args.out, depth_step_um=args.depth_step, pixel_size_um=args.pixel_size,
         depth_start_um=args.depth_start, dark_path=args.dark, positions_path=args.positions,
@@ -79,6 +83,23 @@ def _run_calibrate(args: argparse.Namespace) -> int:
         normalization="planes" if args.normalise_planes else "stack")
     print(result.report.summary_text())
     print(f"model written to {args.out}")
+    return 0
+
+
+def _run_calibrate_lenslet(args: argparse.Namespace) -> int:
+    from volrecon.calibrate import calibrate_lenslet_file
+    from volrecon.errors import ConfigError
+
+    ignored = [name for name, value in (("--wavelength", args.wavelength), ("--crop", args.crop),
+                                        ("--rank", args.rank), ("--positions", args.positions))
+               if value is not None] + (["--bin"] if args.bin != 1 else [])
+    if ignored:
+        raise ConfigError(f"--lenslet-pitch does not take {', '.join(ignored)}; drop them")
+    model = calibrate_lenslet_file(
+        args.stack, args.out, lenslet_pitch=args.lenslet_pitch, depth_step_um=args.depth_step,
+        pixel_size_um=args.pixel_size, depth_start_um=args.depth_start, dark_path=args.dark,
+        normalization="planes" if args.normalise_planes else "stack")
+    print(f"{model!r}\nmodel written to {args.out}")
     return 0
 
 

@@ -10,7 +10,13 @@ import pytest
 from jsonschema import Draft202012Validator
 
 from volrecon.calibrate import calibrate_stack
-from volrecon.models import DepthConvolutionPSF, FieldVaryingPSF, Geometry, LowRankDepthPSF
+from volrecon.models import (
+    DepthConvolutionPSF,
+    FieldVaryingPSF,
+    Geometry,
+    LensletPSF,
+    LowRankDepthPSF,
+)
 from volrecon.models.store import model_kinds
 
 SCHEMA = json.loads((Path(__file__).resolve().parents[2] / "schemas" /
@@ -31,6 +37,7 @@ def _models(rng):
     yield LowRankDepthPSF(rng.random((2, 8, 8)), rng.random((3, 2)), g)
     yield FieldVaryingPSF.from_positions(rng.random((3, 2, 8, 8)), [[1, 1], [6, 6]], g)
     yield FieldVaryingPSF(rng.random((3, 2, 8, 8)), rng.random((3, 2, 8, 8)), g)
+    yield LensletPSF(rng.random((3, 2, 2, 8, 8)), g)
     yield calibrate_stack(scan, depth_step_um=2.0, pixel_size_um=0.4).model
     yield calibrate_stack(scan, depth_step_um=2.0, pixel_size_um=0.4, rank=2,
                           wavelength_nm=520.0, crop_yx=(2, 22, 2, 22)).model

@@ -29,6 +29,7 @@ from volrecon.calibrate.compression import (
     select_rank,
     stack_singular_values,
 )
+from volrecon.calibrate.lenslet import calibrate_lenslet_file, calibrate_lenslet_stack
 from volrecon.calibrate.metrics import autocorrelation_fwhm, axial_resolution, depth_correlation
 from volrecon.calibrate.options import parse_crop, parse_rank
 from volrecon.calibrate.registration import estimate_shift, shift_image
@@ -46,6 +47,8 @@ __all__ = [
     "bin_pixels",
     "border_background",
     "calibrate_file",
+    "calibrate_lenslet_file",
+    "calibrate_lenslet_stack",
     "calibrate_stack",
     "clean_psf_stack",
     "crop_pixels",

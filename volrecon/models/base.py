@@ -90,15 +90,37 @@ class PSFModel(ABC):
     # ----------------------------------------------------------------- construction & storage
     @classmethod
     def from_stack(cls, psf_zyx: Any, depth_step_um: float, pixel_size_um: float,
-                   depth_start_um: float = 0.0, *, dtype: Any = np.float32) -> PSFModel:
-        """Shift-invariant model whose plane ``i`` response is ``psf_zyx[i]``, used as given.
+                   depth_start_um: float = 0.0, *, dtype: Any = np.float32,
+                   lenslet_pitch: int | None = None) -> PSFModel:
+        """Model of a PSF stack, used as given.
 
-        See :class:`volrecon.models.DepthConvolutionPSF`.
+        A (Z, Y, X) stack gives the shift-invariant model whose plane ``i`` response is
+        ``psf_zyx[i]`` (:class:`volrecon.models.DepthConvolutionPSF`). With `lenslet_pitch`
+        ``N``, a (Z, N, N, Y, X) stack of responses to the ``N × N`` sub-positions of a
+        lenslet gives the periodically shift-variant model
+        (:class:`volrecon.models.LensletPSF`).
+
+        Raises
+        ------
+        ShapeError
+            If a 5-D stack comes without `lenslet_pitch`, or its sub-position axes are not
+            ``(N, N)``.
         """
         from volrecon.models.depth_convolution import DepthConvolutionPSF
+        from volrecon.models.periodic import LensletPSF
 
-        return DepthConvolutionPSF(psf_zyx, Geometry(depth_step_um, pixel_size_um, depth_start_um),
-                                   dtype=dtype)
+        geometry = Geometry(depth_step_um, pixel_size_um, depth_start_um)
+        shape = tuple(np.shape(psf_zyx))
+        if lenslet_pitch is None and len(shape) == 5:
+            raise ShapeError(f"a PSF stack of shape {shape} has 5 axes (Z, N, N, Y, X); pass "
+                             f"lenslet_pitch={shape[1]} for a lenslet-array model, or a "
+                             "(Z, Y, X) stack")
+        if lenslet_pitch is None:
+            return DepthConvolutionPSF(psf_zyx, geometry, dtype=dtype)
+        if len(shape) != 5 or shape[1:3] != (lenslet_pitch, lenslet_pitch):
+            raise ShapeError(f"lenslet_pitch={lenslet_pitch} needs a stack of shape (Z, "
+                             f"{lenslet_pitch}, {lenslet_pitch}, Y, X); got {shape}")
+        return LensletPSF(psf_zyx, geometry, dtype=dtype)
 
     def save(self, path: Any) -> None:
         """Write this model as a zarr store at `path` (see ``schemas/psf-model.schema.json``)."""

@@ -1,0 +1,249 @@
+"""Periodically shift-variant PSF model: a lenslet array at the image plane."""
+
+from __future__ import annotations
+
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from volrecon.backend import Backend, get_backend
+from volrecon.errors import DataError, ShapeError
+from volrecon.models.base import Geometry, PSFModel
+
+if TYPE_CHECKING:
+    from volrecon._typing import Array
+
+__all__ = ["LensletPSF"]
+
+
+class LensletPSF(PSFModel):
+    """Volume → frame for a PSF that repeats with the lenslet pitch of ``N`` pixels.
+
+    The sensor image of a point depends on where the point sits within its lenslet (``N × N``
+    sub-positions) and moves rigidly by whole pitches: a unit point at voxel
+    ``(z, y0 + i + kN, x0 + j + lN)`` gives ``psf[z, i, j]`` shifted by ``(kN, lN)``, zero
+    outside (linear, not circular), where ``y0 = N·((Y//2)//N)`` and ``x0 = N·((X//2)//N)``
+    mark the lenslet block that holds the sensor centre. The volume is sampled on the sensor's
+    pixel grid.
+
+    Parameters
+    ----------
+    psf : ndarray of shape (Z, N, N, Y, X)
+        ``psf[z, i, j]``: sensor image of a unit point at voxel ``(z, y0 + i, x0 + j)``, used
+        exactly as given (no normalisation).
+    geometry : Geometry
+        Physical sampling of the volume planes.
+    dtype : {float32, float64}
+        Working precision; spectra are complex64 or complex128.
+    backend : Backend, optional
+        Device and FFT threads. Default: CPU, all cores.
+    calibration : dict, optional
+        JSON-serialisable facts about how the model was made; saved with it.
+
+    Raises
+    ------
+    ShapeError
+        If `psf` is not (Z, N, N, Y, X) with equal sub-position axes, or the lenslet block
+        holding the sensor centre does not fit on the sensor (``N > Y`` or ``N > X``).
+    DataError
+        If `psf` holds NaN or Inf.
+
+    Notes
+    -----
+    Write ``Q = ceil(Y/N)`` and split both the volume and the frame into their ``N²``
+    polyphase components on the coarse lattice of lenslets: ``u_{z,s}[k] = v_z[s + Nk]`` for
+    sub-position ``s = (i, j)`` and ``b_r[m] = b[r + Nm]`` for the sensor phase
+    ``r = (ry, rx)`` (both zero-padded to ``Q × Q``). With the kernel phases
+    ``g_{z,s,r}[n] = psf[z, s](r + Nn)`` the model is a sum of coarse linear convolutions
+
+    .. math::
+
+        b_r[m] = \\sum_z \\sum_s \\sum_k u_{z,s}[k]\\, g_{z,s,r}[m - k + K],
+        \\qquad K = ((Y//2)//N, (X//2)//N),
+
+    and the adjoint is the matching sum of correlations,
+    ``(Aᵀb)_{z,s}[k] = Σ_r Σ_m g_{z,s,r}[m - k + K] b_r[m]``. Each coarse convolution is
+    circular on a zero-padded grid of ``next_fast_len(2Q - 1)`` per axis (equal to the
+    linear one on the kept window), with real FFTs. ``forward`` costs Z·N² forward and N²
+    inverse coarse transforms, ``adjoint`` N² forward and Z·N² inverse; a coarse transform is
+    about ``1/N²`` of one on the full padded grid, so an application costs about ``Z + 1``
+    full-grid transforms, plus Z·N⁴ coarse spectrum products (as many complex products as
+    Z·N² full-grid ones), done per frequency as (B, N²) × (N², N²) matrix products. The
+    spectra take ``Z·N⁴·G_y·(G_x//2 + 1)`` complex numbers, about 4× the stack. The model
+    is not shift-invariant, so :meth:`transfer_functions` is None and ADMM's exact
+    Fourier-domain volume update does not apply: use FISTA or RL.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from volrecon.models import Geometry, LensletPSF
+    >>> psf = np.zeros((1, 2, 2, 8, 8), np.float32)
+    >>> psf[0, 1, 0, 2, 3] = 1.0          # sub-position (1, 0) lights pixel (2, 3)
+    >>> model = LensletPSF(psf, Geometry(2.0, 0.5))
+    >>> model.lenslet_pitch, model.block_origin_yx
+    (2, (4, 4))
+    >>> point = np.zeros(model.shape_in, np.float32)
+    >>> point[0, 4 + 1 + 2, 4 + 0 - 2] = 1.0   # same sub-position, one lenslet down and left
+    >>> image = model.forward(point)
+    >>> [int(c) for c in np.unravel_index(np.argmax(image), image.shape)]
+    [4, 1]
+    >>> round(float(image.sum()), 5)
+    1.0
+    """
+
+    kind = "lenslet"
+
+    def __init__(self, psf: Any, geometry: Geometry, *, dtype: Any = np.float32,
+                 backend: Backend | None = None,
+                 calibration: dict[str, Any] | None = None) -> None:
+        backend = backend or get_backend("cpu")
+        host = np.asarray(psf if isinstance(psf, np.ndarray) else backend.to_numpy(psf))
+        if host.ndim != 5 or min(host.shape) < 1 or host.shape[1] != host.shape[2]:
+            raise ShapeError(f"psf must have 5 non-empty axes (Z, N, N, Y, X) with N the "
+                             f"lenslet pitch in pixels; got shape {host.shape}")
+        nz, n, _, ny, nx = host.shape
+        origin = (n * ((ny // 2) // n), n * ((nx // 2) // n))
+        if origin[0] + n > ny or origin[1] + n > nx:
+            raise ShapeError(f"psf of shape {host.shape}: the {n}×{n} lenslet block at "
+                             f"{origin} holding the sensor centre does not fit on the "
+                             f"{ny}×{nx} sensor; the lenslet pitch must not exceed the "
+                             "sensor size")
+        if not np.isfinite(host).all():
+            raise DataError("psf contains NaN or Inf; clean the PSF stack first")
+        super().__init__((nz, ny, nx), dtype, geometry, backend)
+        self.psf = np.array(host, dtype=self.dtype)  # private copy: inputs are never modified
+        self.psf.setflags(write=False)
+        self.lenslet_pitch: int = int(n)
+        self.block_origin_yx: tuple[int, int] = origin
+        self.calibration: dict[str, Any] = dict(calibration or {})
+        self._spectra = self._phase_spectra()
+
+    # ------------------------------------------------------------------------- lattice
+    @property
+    def lattice_shape(self) -> tuple[int, int]:
+        """Lenslets covering the sensor, ``(ceil(Y/N), ceil(X/N))``."""
+        n = self.lenslet_pitch
+        ny, nx = self.shape_out
+        return (-(-ny // n), -(-nx // n))
+
+    @property
+    def lattice_padded_shape(self) -> tuple[int, int]:
+        """Coarse FFT grid, ``next_fast_len(2Q - 1)`` per axis (``Q``: :attr:`lattice_shape`)."""
+        import scipy.fft
+
+        qy, qx = self.lattice_shape
+        return (scipy.fft.next_fast_len(2 * qy - 1, real=True),
+                scipy.fft.next_fast_len(2 * qx - 1, real=True))
+
+    def _phase_spectra(self) -> Array:
+        """Spectra ``Ĝ`` of the kernel phases, centre at ``K``: (Z, Gy·(Gx//2+1), N², N²),
+        frequency first so that the sums over sub-positions are batched matrix products."""
+        be = self.backend
+        n = self.lenslet_pitch
+        nz, ny, nx = self.shape_in
+        qy, qx = self.lattice_shape
+        grid = self.lattice_padded_shape
+        padded = np.zeros((nz, n, n, qy * n, qx * n), dtype=self.dtype)
+        padded[..., :ny, :nx] = self.psf
+        # [z, i, j, m, ry, l, rx] = psf[z, i, j, ry + N m, rx + N l] → [z, s, r, m, l]
+        phases = (padded.reshape(nz, n, n, qy, n, qx, n).transpose(0, 1, 2, 4, 6, 3, 5)
+                  .reshape(nz, n * n, n * n, qy, qx))
+        placed = np.zeros((*phases.shape[:3], *grid), dtype=self.dtype)
+        placed[..., :qy, :qx] = phases
+        k0 = (self.block_origin_yx[0] // n, self.block_origin_yx[1] // n)
+        placed = np.roll(placed, (-k0[0], -k0[1]), axis=(-2, -1))
+        spectra = be.rfft2(be.asarray(placed), grid)
+        spectra = spectra.reshape(*spectra.shape[:3], -1).transpose(0, 3, 1, 2)
+        return be.xp.ascontiguousarray(spectra)
+
+    def _split(self, planes: Array) -> Array:
+        """(..., Y, X) → (..., N², Q_y, Q_x): the polyphase components, zero-padded."""
+        xp = self.backend.xp
+        n = self.lenslet_pitch
+        ny, nx = self.shape_out
+        qy, qx = self.lattice_shape
+        lead = planes.shape[:-2]
+        padded = xp.zeros((*lead, qy * n, qx * n), dtype=self.dtype)
+        padded[..., :ny, :nx] = planes
+        split = padded.reshape(-1, qy, n, qx, n).transpose(0, 2, 4, 1, 3)
+        return xp.ascontiguousarray(split).reshape(*lead, n * n, qy, qx)
+
+    def _merge(self, phases: Array) -> Array:
+        """Inverse of :meth:`_split`: (B, N², Q_y, Q_x) → (B, Y, X), the padding dropped."""
+        n = self.lenslet_pitch
+        ny, nx = self.shape_out
+        qy, qx = self.lattice_shape
+        full = phases.reshape(-1, n, n, qy, qx).transpose(0, 3, 1, 4, 2)
+        return full.reshape(-1, qy * n, qx * n)[:, :ny, :nx]
+
+    # ------------------------------------------------------------------------- application
+    def _forward(self, volumes: Array) -> Array:
+        be = self.backend
+        grid = self.lattice_padded_shape
+        batch, pairs = volumes.shape[0], self.lenslet_pitch**2
+        total = be.xp.zeros((self._spectra.shape[1], batch, pairs), dtype=self._spectra.dtype)
+        for z in range(self.n_planes):
+            spectra = be.rfft2(self._split(volumes[:, z]), grid)  # (B, S, Gy, Gxh)
+            # Σ_s Û_{z,s}(f) Ĝ_{z,s,r}(f): per frequency, (B, S) @ (S, R).
+            total += be.xp.matmul(spectra.reshape(batch, pairs, -1).transpose(2, 0, 1),
+                                  self._spectra[z])
+        total = be.xp.ascontiguousarray(total.transpose(1, 2, 0))
+        phases = be.irfft2_window(total.reshape(batch, pairs, grid[0], -1), grid,
+                                  self.lattice_shape, overwrite=True)
+        return be.xp.ascontiguousarray(self._merge(phases))
+
+    def _adjoint(self, images: Array) -> Array:
+        # Correlation with g: irfft2(conj(Ĝ)·B̂) is, for real signals, the circular index
+        # reversal of irfft2(Ĝ·conj(B̂)), summed here over the sensor phases r.
+        be = self.backend
+        grid = self.lattice_padded_shape
+        batch, pairs = images.shape[0], self.lenslet_pitch**2
+        spectrum = be.rfft2(self._split(images), grid)  # (B, R, Gy, Gxh)
+        be.xp.conjugate(spectrum, out=spectrum)
+        spectrum = be.xp.ascontiguousarray(spectrum.reshape(batch, pairs, -1).transpose(2, 1, 0))
+        out = be.xp.empty((batch, *self.shape_in), dtype=self.dtype)
+        for z in range(self.n_planes):
+            # Σ_r Ĝ_{z,s,r}(f) conj(B̂_r)(f): per frequency, (S, R) @ (R, B).
+            planes = be.xp.matmul(self._spectra[z], spectrum)
+            planes = be.xp.ascontiguousarray(planes.transpose(2, 1, 0))
+            phases = be.irfft2_window(planes.reshape(batch, pairs, grid[0], -1), grid,
+                                      self.lattice_shape, reverse=True, overwrite=True)
+            out[:, z] = self._merge(phases)
+        return out
+
+    # ------------------------------------------------------------------------- storage
+    def store_arrays(self) -> dict[str, np.ndarray]:
+        return {"psf": self.psf}
+
+    def store_attributes(self) -> dict[str, Any]:
+        return {"lenslet_pitch": self.lenslet_pitch, "calibration": self.calibration}
+
+    @classmethod
+    def from_store(cls, arrays: dict[str, np.ndarray], attributes: dict[str, Any],
+                   geometry: Geometry, dtype: Any) -> LensletPSF:
+        model = cls(arrays["psf"], geometry, dtype=dtype,
+                    calibration=attributes.get("calibration"))
+        pitch = attributes.get("lenslet_pitch", model.lenslet_pitch)
+        if pitch != model.lenslet_pitch:
+            raise DataError(f"attribute 'parameters/lenslet_pitch' is {pitch!r} but array "
+                            f"'psf' has {model.lenslet_pitch}×{model.lenslet_pitch} "
+                            "sub-positions; re-run calibration")
+        return model
+
+    def with_backend(self, backend: Backend) -> LensletPSF:
+        model = LensletPSF(self.psf, self.geometry, dtype=self.dtype, backend=backend,
+                           calibration=self.calibration)
+        model._norm_cache.update(self._norm_cache)
+        return model
+
+    def __reduce__(self) -> tuple[Any, ...]:
+        # Pickle the PSF, not the spectra (4× the bytes); the receiver rebuilds them.
+        return (_rebuild, (self.psf, self.geometry, self.dtype.str,
+                           self._norm_cache.get("value"), self.calibration))
+
+
+def _rebuild(psf: np.ndarray, geometry: Geometry, dtype: str, norm: float | None,
+             calibration: dict[str, Any]) -> LensletPSF:
+    model = LensletPSF(psf, geometry, dtype=dtype, calibration=calibration)
+    model._seed_norm(norm)
+    return model

@@ -189,14 +189,21 @@ def test_colour_and_4d_tiffs_refused(tmp_path, rng):
         open_frames(tmp_path / "tz.tif")
 
 
-def test_glob_with_a_different_frame_refused_at_read(tmp_path):
+def test_glob_with_a_different_frame_refused(tmp_path):
     folder = tmp_path / "frames"
     folder.mkdir()
     tifffile.imwrite(folder / "a1.tif", np.zeros((8, 8), np.uint16))
     tifffile.imwrite(folder / "a2.tif", np.zeros((8, 9), np.uint16))
+    tifffile.imwrite(folder / "a3.tif", np.zeros((8, 8), np.uint16))
+    # One frame per file: only the first and last are opened at once, the rest when read.
     source = open_frames(folder / "a*.tif")
-    with pytest.raises(InputFileError, match=r"a2\.tif"):
-        source.read(0, 2)
+    with pytest.raises(InputFileError, match=r"a2\.tif: holds frames of \(8, 9\) uint16, the "
+                                             r"first file .* move the odd file out"):
+        source.read(0, 3)
+    (folder / "a3.tif").unlink()
+    with pytest.raises(InputFileError, match=r"a2\.tif: holds frames of \(8, 9\) uint16, but "
+                                             r".*a1\.tif \(8, 8\) uint16"):
+        open_frames(folder / "a*.tif")
 
 
 def test_file_replaced_after_open_is_reported(tmp_path, rng):

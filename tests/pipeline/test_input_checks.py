@@ -1,15 +1,17 @@
 """Sanity checks of a job's frames before any work: a foreign dark refused, hot pixels found,
-warned about and (``[video] hot_pixels = "repair"``) repaired."""
+warned about and (``[video] hot_pixels = "repair"``) repaired; the input formats (TIFF parts,
+HDF5) reconstructed end to end like one TIFF, and their bad input refused before any write."""
 
 from __future__ import annotations
 
+import h5py
 import numpy as np
 import pytest
 import tifffile
 import zarr
-from jobdata import N_FRAMES, read_volumes
+from jobdata import N_FRAMES, assert_bit_identical, read_store_arrays, read_volumes
 
-from volrecon.errors import ConfigError, DataError, HotPixelWarning
+from volrecon.errors import ConfigError, DataError, HotPixelWarning, InputFileError
 from volrecon.pipeline import load_job, prepare_job, run_job
 
 HOT_YX = np.array([[5, 7], [15, 20]])
@@ -67,3 +69,65 @@ def test_hot_pixels_repaired_when_asked(job_files):
 def test_hot_pixels_key_checked(job_files):
     with pytest.raises(ConfigError, match=r"video\.hot_pixels"):
         load_job(job_files.write_job(video={"hot_pixels": "fix"}))
+
+
+# ------------------------------------------------------------- input formats, end to end
+def _single_tiff_reference(job_files):
+    job = load_job(job_files.write_job("single.toml", output={"path": "single.zarr"}))
+    run_job(job)
+    return read_store_arrays(job.output_path)
+
+
+def test_tiff_parts_run_bit_identical_to_single_tiff(job_files):
+    parts = job_files.folder / "parts"
+    parts.mkdir()
+    for name, (a, b) in {"rec_2.tif": (0, 5), "rec_10.tif": (5, N_FRAMES)}.items():
+        tifffile.imwrite(parts / name, job_files.raw[a:b], photometric="minisblack")
+    # Natural order matters: text order would put rec_10 (frames 5:12) first.
+    job = load_job(job_files.write_job(video={"path": "parts/rec_*.tif"}))
+    run_job(job)
+    assert_bit_identical(read_store_arrays(job.output_path), _single_tiff_reference(job_files))
+
+
+def test_hdf5_run_bit_identical_to_single_tiff(job_files):
+    with h5py.File(job_files.folder / "raw.h5", "w") as handle:
+        handle.create_dataset("entry/frames", data=job_files.raw, chunks=(4, 24, 24),
+                              compression="gzip")
+    job = load_job(job_files.write_job(video={"path": "raw.h5", "dataset": "/entry/frames"}))
+    run_job(job)
+    assert_bit_identical(read_store_arrays(job.output_path), _single_tiff_reference(job_files))
+
+
+def test_missing_hdf5_dataset_refused_before_any_write(job_files):
+    with h5py.File(job_files.folder / "raw.h5", "w") as handle:
+        handle["entry/frames"] = job_files.raw
+    job = load_job(job_files.write_job(video={"path": "raw.h5", "dataset": "/frames"}))
+    with pytest.raises(InputFileError, match=r"raw\.h5: no dataset '/frames' in the file; set "
+                                             r"\[video\] dataset to one of its image datasets "
+                                             r"\(/entry/frames\)"):
+        run_job(job)
+    assert not job.output_path.exists()
+
+
+def test_parts_of_another_frame_size_refused_before_any_write(job_files):
+    tifffile.imwrite(job_files.folder / "p_1.tif", job_files.raw[:6])
+    tifffile.imwrite(job_files.folder / "p_2.tif", job_files.raw[6:, :, :20])
+    job = load_job(job_files.write_job(video={"path": "p_*.tif"}))
+    with pytest.raises(InputFileError, match=r"p_2\.tif: holds frames of \(24, 20\) uint16"):
+        run_job(job)
+    assert not job.output_path.exists()
+
+
+def test_dataset_key_serves_zarr_and_component_is_its_older_name(job_files):
+    group = zarr.open_group(job_files.folder / "raw.zarr", mode="w")
+    group.create_array("cam/raw", data=job_files.raw)
+    job = load_job(job_files.write_job(video={"path": "raw.zarr", "dataset": "cam/raw"}))
+    assert job.video_component == "cam/raw"
+    with pytest.warns(FutureWarning, match=r"video\.component' is renamed; write dataset = "
+                                           r"'cam/raw'"):
+        old = load_job(job_files.write_job("old.toml", video={"path": "raw.zarr",
+                                                               "component": "cam/raw"}))
+    assert old.video_component == "cam/raw"
+    with pytest.raises(ConfigError, match=r"'video\.dataset' and 'video\.component' are both"):
+        load_job(job_files.write_job("both.toml", video={"path": "raw.zarr", "dataset": "a",
+                                                         "component": "a"}))

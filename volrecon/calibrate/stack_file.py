@@ -1,4 +1,5 @@
-"""Reading field-position CSV files (TIFF stacks: :func:`volrecon.io.read_tiff_stack`)."""
+"""Reading field-position CSV files (bead-scan stacks, TIFF, TIFF parts, OME-TIFF series or
+HDF5: :func:`volrecon.io.read_tiff_stack`)."""
 
 from __future__ import annotations
 

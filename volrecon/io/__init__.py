@@ -1,5 +1,6 @@
-"""Input and output: lazy frame readers, camera corrections, input sanity checks, fingerprints,
-OME-Zarr writing and reading, zarr group attributes."""
+"""Input and output: lazy frame readers (TIFF, TIFF parts, OME-TIFF series, HDF5, zarr), camera
+corrections, input sanity checks, fingerprints, OME-Zarr writing and reading, zarr group
+attributes."""
 
 from volrecon.io.checks import check_offset, find_hot_pixels, sample_frames
 from volrecon.io.correct import FrameCorrection
@@ -14,6 +15,7 @@ from volrecon.io.frames import (
     open_frames,
     read_image,
 )
+from volrecon.io.hdf5 import Hdf5Frames, read_hdf5_array
 from volrecon.io.ome_zarr import (
     OmeImage,
     OmeLevel,
@@ -28,6 +30,7 @@ from volrecon.io.zarr_groups import group_attributes
 __all__ = [
     "FrameCorrection",
     "FrameSource",
+    "Hdf5Frames",
     "OmeImage",
     "OmeLevel",
     "TiffFrames",
@@ -45,6 +48,7 @@ __all__ = [
     "ome_image_attributes",
     "open_frames",
     "parse_ome_image",
+    "read_hdf5_array",
     "read_image",
     "read_tiff_stack",
     "replacing",

@@ -15,6 +15,7 @@ import numpy as np
 
 from volrecon.errors import InputFileError
 from volrecon.io.frames import FrameSource, TiffFrames, TiffGlobFrames, ZarrFrames
+from volrecon.io.hdf5 import Hdf5Frames
 
 __all__ = ["fingerprint_file", "fingerprint_frames", "fingerprint_tree"]
 
@@ -80,7 +81,8 @@ def fingerprint_frames(source: FrameSource) -> str:
     """Fingerprint the video behind a frame reader.
 
     A TIFF file: :func:`fingerprint_file`. A glob: the number and names of the files plus the
-    first and last file. A zarr array: its shape, dtype and first and last frame.
+    first and last file. A zarr array: its shape, dtype and first and last frame. An HDF5
+    dataset: its name inside the file and the file's fingerprint.
     """
     digest = hashlib.sha256()
     digest.update(repr((source.shape, source.dtype.str)).encode())
@@ -92,6 +94,9 @@ def fingerprint_frames(source: FrameSource) -> str:
         for name in {source.paths[0], source.paths[-1]}:
             digest.update(fingerprint_file(name).encode())
         return f"sha256-glob:{digest.hexdigest()}"
+    if isinstance(source, Hdf5Frames):
+        digest.update(source.dataset.encode() + b"\0" + fingerprint_file(source.path).encode())
+        return f"sha256-hdf5:{digest.hexdigest()}"
     if isinstance(source, ZarrFrames):
         for index in sorted({0, source.n_frames - 1}):
             digest.update(np.ascontiguousarray(source.read(index, index + 1)).tobytes())

@@ -1,4 +1,5 @@
-"""Lazy readers of raw camera video: a multi-page (Big)TIFF, a glob of TIFFs, a zarr array.
+"""Lazy readers of raw camera video: a multi-page (Big)TIFF, TIFF parts (a glob of TIFF files
+or an OME-TIFF series over several files), a zarr array (HDF5: :mod:`volrecon.io.hdf5`).
 
 Every reader is a small frozen object that holds paths and the frame shape and dtype only. It
 opens its file inside :meth:`FrameSource.read`, so a reader pickles and each dask task (in a
@@ -8,6 +9,7 @@ file once: shape, dtype and, for TIFF, that the file is not truncated.
 
 from __future__ import annotations
 
+import bisect
 import glob
 import logging
 import os
@@ -15,7 +17,6 @@ import re
 import struct
 from abc import ABC, abstractmethod
 from dataclasses import dataclass
-from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -198,23 +199,7 @@ class TiffFrames(FrameSource):
                 return np.array(mapped, dtype=self.dtype)
             finally:
                 del mapped
-        import tifffile
-
-        size = os.path.getsize(self.path)
-        out = np.empty((stop - start, *self.shape[1:]), dtype=self.dtype)
-        with tifffile.TiffFile(self.path) as tf:
-            for i in range(start, stop):
-                page = tf.pages[i]
-                problem = tiff_page_problem(page, size)
-                if problem is None and tuple(page.shape) != self.shape[1:]:
-                    problem = f"it has shape {tuple(page.shape)}, page 0 {self.shape[1:]}"
-                if problem is not None:
-                    raise InputFileError(
-                        f"{self.path}: page {i} cannot be read: {problem}; the file is damaged, "
-                        "copy it again from the camera"
-                    )
-                out[i - start] = page.asarray()
-        return out
+        return _read_pages(self.path, start, stop, self.shape[1:], self.dtype)
 
 
 def _inspect_tiff(path: str, *, key: str = "[video] path"
@@ -253,6 +238,11 @@ def _read_tiff_header(path: str, size: int, key: str
                     "(one frame per page)"
                 )
             dtype = np.dtype(first.dtype)
+            if len(series) == 1 and getattr(series[0], "is_multifile", False):
+                raise InputFileError(
+                    f"{path}: is one file of an OME-TIFF series over several files; set {key} "
+                    "to this one file (no wildcards): the series is read across its files"
+                )
             if len(series) == 1:
                 expected = int(np.prod(series[0].shape)) // int(np.prod(frame_shape))
                 if series[0].ndim > 3:
@@ -311,17 +301,35 @@ def natural_sort_key(name: str) -> list[Any]:
 
 @dataclass(frozen=True)
 class TiffGlobFrames(FrameSource):
-    """A sequence of single-frame TIFF files, in natural order of their names.
+    """Frames spread over several TIFF files, read part by part.
+
+    Two layouts give such a video: a glob pattern of TIFF files, each one frame or a
+    multi-page part of a long recording (in natural order of their paths, so
+    ``part_2.tif`` comes before ``part_10.tif``), and an OME-TIFF series whose OME-XML places
+    its planes in several files. A read opens only the files that hold the frames asked for.
 
     Attributes
     ----------
     paths : tuple of str
-        One file per frame, sorted so that ``img_2.tif`` comes before ``img_10.tif``.
+        The file of each part (a run of consecutive frames in one file).
+    part_stops : tuple of int
+        The frame just after each part: part ``i`` holds frames
+        ``part_stops[i - 1]:part_stops[i]`` (from 0 for the first part).
+    first_pages : tuple of int
+        For an OME-TIFF series, the page (IFD) of each part's first frame in its file; empty
+        for a glob, whose parts are whole files.
+    parts : tuple of TiffFrames
+        For a glob of multi-page parts, each part's reader (its header read at open, so
+        uncompressed parts are read by offset); empty for single frames, each file checked
+        as it is read.
     pattern : str
-        The glob pattern they came from.
+        The glob pattern or the OME-TIFF file given, for messages.
     """
 
     paths: tuple[str, ...] = ()
+    part_stops: tuple[int, ...] = ()
+    first_pages: tuple[int, ...] = ()
+    parts: tuple[TiffFrames, ...] = ()
     pattern: str = ""
 
     @property
@@ -329,46 +337,178 @@ class TiffGlobFrames(FrameSource):
         return self.pattern
 
     @classmethod
-    def open(cls, pattern: str | os.PathLike[str]) -> TiffGlobFrames:
-        """Find the files matching `pattern` and check the first one.
+    def open(cls, pattern: str | os.PathLike[str], *, key: str = "[video] path"
+             ) -> TiffGlobFrames:
+        """Find the TIFF files matching `pattern` and read the headers needed.
+
+        When the first and the last file each hold one frame, every file is taken to hold
+        one (checked as it is read, so a glob of 10^5 single frames opens fast); otherwise
+        every file's header is read now to count its frames.
 
         Raises
         ------
         InputFileError
-            If nothing matches or the first file is not a single 2-D frame.
+            If nothing matches, a file is damaged or truncated, holds frames of another size
+            or type than the first file, or is one file of an OME-TIFF series.
         """
         pattern = os.fspath(pattern)
-        paths = sorted(glob.glob(pattern), key=lambda p: natural_sort_key(os.path.basename(p)))
-        paths = [p for p in paths if os.path.isfile(p)]
+        paths = sorted((p for p in glob.glob(pattern) if os.path.isfile(p)),
+                       key=natural_sort_key)
         if not paths:
-            raise InputFileError(f"{pattern}: no file matches this pattern; check [video] path")
-        shape, dtype, _, _ = _inspect_tiff(paths[0])
-        if shape[0] != 1:
-            raise InputFileError(
-                f"{paths[0]}: holds {shape[0]} frames; a glob of TIFFs needs one frame per file "
-                "(give a multi-page file as a path without wildcards)"
-            )
-        return cls(shape=(len(paths), shape[1], shape[2]), dtype=dtype, paths=tuple(paths),
-                   pattern=pattern)
+            raise InputFileError(f"{pattern}: no file matches this pattern; check {key}")
+        first = _inspect_tiff(paths[0], key=key)
+        last = _inspect_tiff(paths[-1], key=key) if len(paths) > 1 else first
+        _check_same_frames(paths[0], first, paths[-1], last)
+        parts: list[TiffFrames] = []
+        if first[0][0] == 1 and last[0][0] == 1:
+            counts = [1] * len(paths)
+        else:
+            known = {paths[0]: first, paths[-1]: last}
+            for path in paths:
+                part = known[path] if path in known else _inspect_tiff(path, key=key)
+                _check_same_frames(paths[0], first, path, part)
+                parts.append(TiffFrames(shape=part[0], dtype=part[1], path=path,
+                                        data_offset=part[2], byte_order=part[3]))
+            counts = [part.n_frames for part in parts]
+        stops = tuple(int(n) for n in np.cumsum(counts))
+        return cls(shape=(stops[-1], first[0][1], first[0][2]), dtype=first[1],
+                   paths=tuple(paths), part_stops=stops, parts=tuple(parts), pattern=pattern)
 
     def _read(self, start: int, stop: int) -> np.ndarray:
-        import tifffile
-
         out = np.empty((stop - start, *self.shape[1:]), dtype=self.dtype)
-        for i in range(start, stop):
-            try:
-                frame = tifffile.imread(self.paths[i])
-            except _TIFF_ERRORS as exc:
-                raise InputFileError(
-                    f"{self.paths[i]}: cannot read frame {i} ({exc}); check the file"
-                ) from exc
-            if frame.shape != self.shape[1:]:
-                raise InputFileError(
-                    f"{self.paths[i]}: frame {i} has shape {frame.shape}, the first file "
-                    f"{self.shape[1:]}; every file must hold one frame of the same size"
-                )
-            out[i - start] = frame
+        part = bisect.bisect_right(self.part_stops, start)
+        index = start
+        while index < stop:
+            begin = self.part_stops[part - 1] if part else 0
+            end = min(stop, self.part_stops[part])
+            out[index - start:end - start] = self._read_part(part, index - begin, end - begin)
+            index, part = end, part + 1
         return out
+
+    def _read_part(self, part: int, start: int, stop: int) -> np.ndarray:
+        path = self.paths[part]
+        if self.first_pages:
+            first = self.first_pages[part]
+            return _read_pages(path, first + start, first + stop, self.shape[1:], self.dtype)
+        if self.parts:
+            return self.parts[part].read(start, stop)
+        source = TiffFrames.open(path)
+        if source.shape[1:] != self.shape[1:] or source.dtype != self.dtype:
+            raise InputFileError(
+                f"{path}: holds frames of {source.shape[1:]} {source.dtype}, the first file of "
+                f"{self.pattern} {self.shape[1:]} {self.dtype}; every file must hold frames of "
+                "one size and type, move the odd file out of the pattern"
+            )
+        if source.n_frames != 1:
+            raise InputFileError(
+                f"{path}: holds {source.n_frames} frames, the first and last files of "
+                f"{self.pattern} one each; give every file one frame, or match the parts of a "
+                "recording with a pattern of their own"
+            )
+        return source.read(start, stop)
+
+
+_Inspected = tuple[tuple[int, int, int], np.dtype[Any], int | None, str]
+
+
+def _check_same_frames(first_path: str, first: _Inspected, path: str, info: _Inspected
+                       ) -> None:
+    if info[0][1:] != first[0][1:] or info[1] != first[1]:
+        raise InputFileError(
+            f"{path}: holds frames of {info[0][1:]} {info[1]}, but {first_path} "
+            f"{first[0][1:]} {first[1]}; every file of the glob must hold frames of one size "
+            "and type, move the odd file out of the pattern"
+        )
+
+
+def _read_pages(path: str, start: int, stop: int, frame_shape: tuple[int, ...],
+                dtype: np.dtype[Any]) -> np.ndarray:
+    """Pages ``start:stop`` of one TIFF file, each checked against the file before reading."""
+    import tifffile
+
+    size = os.path.getsize(path)
+    out = np.empty((stop - start, *frame_shape), dtype=dtype)
+    with tifffile.TiffFile(path) as tf:
+        for i in range(start, stop):
+            page = tf.pages[i]
+            problem = tiff_page_problem(page, size)
+            if problem is None and (tuple(page.shape) != frame_shape
+                                    or np.dtype(page.dtype).newbyteorder("=") != dtype):
+                problem = (f"it holds {tuple(page.shape)} {page.dtype}, the video "
+                           f"{frame_shape} {dtype}")
+            if problem is not None:
+                raise InputFileError(
+                    f"{path}: page {i} cannot be read: {problem}; the file is damaged, copy "
+                    "it again from the camera"
+                )
+            out[i - start] = page.asarray()
+    return out
+
+
+def _open_ome_series(path: str, key: str) -> TiffGlobFrames | None:
+    """The reader of an OME-TIFF series spread over several files; None for any other file.
+
+    tifffile's OME support follows the OME-XML's references to the other files (they must
+    sit in the same folder); their headers are read here, their pixels only by the tasks.
+    """
+    import tifffile
+
+    try:
+        with capture_tifffile_log(logging.WARNING) as messages, tifffile.TiffFile(path) as tf:
+            if not tf.is_ome:
+                return None
+            binary_only = re.search(r'<BinaryOnly[^>]*MetadataFile="([^"]+)"',
+                                    tf.ome_metadata or "")
+            if binary_only:
+                raise InputFileError(
+                    f"{path}: holds only pixels of an OME-TIFF series whose OME-XML is in "
+                    f"{binary_only.group(1)}; set {key} to that file"
+                )
+            series = tf.series[0] if tf.series else None
+            missing = [m for m in messages if "failed to read" in m or "missing" in m]
+            if missing:
+                raise InputFileError(
+                    f"{path}: the OME-TIFF series lacks planes ({missing[0]}); put every file "
+                    "the OME-XML names next to this one"
+                )
+            if series is None or not series.is_multifile:
+                return None
+            return _ome_parts(path, series, key)
+    except InputFileError:
+        raise
+    except _TIFF_ERRORS:
+        return None  # not a readable OME-TIFF series: the TIFF reader says what is wrong
+
+
+def _ome_parts(path: str, series: Any, key: str) -> TiffGlobFrames:
+    axes, shape = str(series.axes), tuple(int(n) for n in series.shape)
+    if len(shape) not in (2, 3) or "S" in axes:
+        raise InputFileError(
+            f"{path}: holds an OME-TIFF series of shape {shape} with axes {axes}; expected "
+            f"(T, Y, X) grayscale frames; check {key}"
+        )
+    dtype = np.dtype(series.dtype)
+    if dtype.kind not in "uif":
+        raise InputFileError(f"{path}: pixels are of type {dtype}; expected integer or "
+                             "floating-point grayscale frames")
+    paths: list[str] = []
+    firsts: list[int] = []
+    counts: list[int] = []
+    for frame, page in enumerate(series.pages):
+        if page is None:
+            raise InputFileError(f"{path}: plane {frame} of the OME-TIFF series is in no "
+                                 "readable file; put every file of the series next to it")
+        file, index = str(page.parent.filehandle.path), int(page.index)
+        if paths and paths[-1] == file and firsts[-1] + counts[-1] == index:
+            counts[-1] += 1
+        else:
+            paths.append(file)
+            firsts.append(index)
+            counts.append(1)
+    stops = tuple(int(n) for n in np.cumsum(counts))
+    return TiffGlobFrames(shape=(stops[-1], shape[-2], shape[-1]), dtype=dtype.newbyteorder("="),
+                          paths=tuple(paths), part_stops=stops, first_pages=tuple(firsts),
+                          pattern=path)
 
 
 # --------------------------------------------------------------------------------------- zarr
@@ -423,35 +563,42 @@ def _open_zarr_array(path: str, component: str) -> Any:
                for name in ("zarr.json", ".zarray", ".zgroup")):
         raise InputFileError(
             f"{path}: a folder but not a zarr store (no zarr.json); set [video] path to a TIFF "
-            "file, a glob pattern of TIFFs or a zarr store"
+            "file, a glob pattern of TIFFs, an HDF5 file or a zarr store"
         )
     try:
         node = zarr.open(path, mode="r", path=component or None)
     except (FileNotFoundError, KeyError, ValueError, zarr.errors.NodeNotFoundError) as exc:
         raise InputFileError(
-            f"{path}: no zarr array at '{component}' ({exc}); set [video] component to the "
+            f"{path}: no zarr array at '{component}' ({exc}); set [video] dataset to the "
             "array's path inside the store"
         ) from exc
     if not isinstance(node, zarr.Array):
         names = sorted(name for name, _ in node.arrays())
         raise InputFileError(
-            f"{path}: '{component or '/'}' is a zarr group; set [video] component to one of its "
+            f"{path}: '{component or '/'}' is a zarr group; set [video] dataset to one of its "
             f"arrays {names}"
         )
     return node
 
 
 # ----------------------------------------------------------------------------------- dispatch
-def open_frames(path: str | os.PathLike[str], *, component: str = "") -> FrameSource:
-    """Open raw video lazily: a TIFF file, a glob pattern of TIFFs, or a zarr array.
+def open_frames(path: str | os.PathLike[str], *, component: str = "",
+                key: str = "[video] path") -> FrameSource:
+    """Open raw video lazily, the format found from the path and the file's content.
 
     Parameters
     ----------
     path : str or path
-        ``*.tif``/``*.tiff`` file (multi-page, BigTIFF allowed), a glob pattern
-        (``frames/*.tif``, sorted in natural order) or a zarr store directory.
+        A TIFF file (multi-page, BigTIFF, or one file of an OME-TIFF series over several
+        files: the whole series is read), a glob pattern of TIFF files (single frames or
+        multi-page parts, in natural order: ``part_2`` before ``part_10``), an HDF5 file
+        (HDF5 signature, or a name ending ``.h5``/``.hdf5``/``.hdf``/``.he5``/``.nxs``) or a
+        zarr store directory.
     component : str, optional
-        For zarr: the array's path inside the store.
+        ``[video] dataset``: the array's path inside a zarr store or an HDF5 file. Optional
+        for HDF5 when the file holds exactly one 3-D dataset.
+    key : str
+        Where `path` came from, named in messages.
 
     Returns
     -------
@@ -461,37 +608,45 @@ def open_frames(path: str | os.PathLike[str], *, component: str = "") -> FrameSo
     Raises
     ------
     InputFileError
-        If the input is missing, unreadable, truncated or not a stack of 2-D frames.
+        If the input is missing, unreadable, truncated or not a stack of 2-D frames, or a
+        dataset is given for a TIFF input.
     """
+    from volrecon.io.hdf5 import HDF5_SUFFIXES, Hdf5Frames, is_hdf5
+
     text = os.fspath(path)
-    if _GLOB_CHARACTERS & set(Path(text).name) or _GLOB_CHARACTERS & set(str(Path(text).parent)):
-        return TiffGlobFrames.open(text)
-    if os.path.isdir(text):
+    is_pattern = _GLOB_CHARACTERS & set(text)
+    if os.path.isdir(text) and not is_pattern:
         return ZarrFrames.open(text, component)
+    if os.path.isfile(text) and (is_hdf5(text) or text.lower().endswith(HDF5_SUFFIXES)):
+        return Hdf5Frames.open(text, component)
     if component:
-        raise InputFileError(f"{text}: [video] component is only for zarr stores; remove it")
-    return TiffFrames.open(text)
+        raise InputFileError(f"{text}: [video] dataset is only for zarr stores and HDF5 "
+                             "files, this is a TIFF input; remove it")
+    if is_pattern:
+        return TiffGlobFrames.open(text, key=key)
+    series = _open_ome_series(text, key) if os.path.isfile(text) else None
+    return series if series is not None else TiffFrames.open(text, key=key)
 
 
 def read_image(path: str | os.PathLike[str], *, key: str = "the calibration image path"
                ) -> np.ndarray:
     """Read a calibration image (dark or flat frame) as float32 ``(Y, X)``.
 
-    A multi-page TIFF is averaged over its pages (a stack of dark frames becomes their mean).
+    A stack of frames is averaged (a stack of dark frames becomes their mean).
 
     Parameters
     ----------
     path : str or path
-        The TIFF file.
+        Any input :func:`open_frames` reads (an HDF5 file's only 3-D or 2-D dataset).
     key : str
         Where the path came from (e.g. ``"[video] dark"``), named in error messages.
 
     Raises
     ------
     InputFileError
-        If the file is missing or not a TIFF of 2-D frames.
+        If the file is missing or not a stack of 2-D frames.
     """
-    source = TiffFrames.open(path, key=key)
+    source = open_frames(path, key=key)
     total = np.zeros(source.shape[1:], dtype=np.float64)
     step = 64
     for start in range(0, source.n_frames, step):

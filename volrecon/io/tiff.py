@@ -1,5 +1,6 @@
-"""Reading whole TIFF stacks (bead scans, dark frames, reference z-stacks) and the checks
-every TIFF reader of volrecon shares: page tags against the file, tifffile's log."""
+"""Reading whole stacks (bead scans, dark frames, reference z-stacks: TIFF, TIFF parts, OME-TIFF
+series, HDF5) and the checks every TIFF reader of volrecon shares: page tags against the file,
+tifffile's log."""
 
 from __future__ import annotations
 
@@ -87,18 +88,25 @@ def tiff_page_problem(page: Any, file_size: int) -> str | None:
 
 
 def read_tiff_stack(path: str | os.PathLike[str], *, what: str = "bead scan",
-                    key: str | None = None) -> np.ndarray:
-    """Read every page of a grayscale TIFF into one array, refusing damaged files.
+                    key: str | None = None, dataset: str = "") -> np.ndarray:
+    """Read a whole grayscale stack into one array, refusing damaged files.
+
+    Besides one TIFF file this reads an OME-TIFF series over several files (give the file
+    with the OME-XML), a glob pattern of TIFF parts (natural order of the paths, stacked along
+    the first axis) and an HDF5 dataset (HDF5 signature or an ``.h5``-like name).
 
     Parameters
     ----------
     path : path-like
         A (multi-page) TIFF; the first series is read, e.g. (Z, Y, X) or (K, Z, Y, X).
+        Or a glob pattern of such files, or an HDF5 file.
     what : str
         What the file is, for error messages ("bead scan", "dark frame").
     key : str, optional
         Where the path came from (an option such as ``"--reference"``), named when the file
         is missing.
+    dataset : str, optional
+        For HDF5: the dataset's path. Default: the file's only dataset of 4, 3 or 2 axes.
 
     Returns
     -------
@@ -108,14 +116,26 @@ def read_tiff_stack(path: str | os.PathLike[str], *, what: str = "bead scan",
     Raises
     ------
     InputFileError
-        If the file is missing, not a TIFF, truncated or corrupt, colour, or of a
-        non-real dtype.
+        If the file is missing, not a TIFF or HDF5 file, truncated or corrupt, colour, or of
+        a non-real dtype; or the parts of a glob differ in shape or type.
     """
+    from volrecon.io.hdf5 import HDF5_SUFFIXES, is_hdf5, read_hdf5_array
+
+    text = os.fspath(path)
+    where = key or f"the path of the {what}"
+    if set("*?[") & set(text):
+        return _read_stack_parts(text, what, where)
     p = Path(path)
     if not p.is_file():
-        raise InputFileError(f"{p}: no such file; check {key or f'the path of the {what}'}")
+        raise InputFileError(f"{p}: no such file; check {where}")
+    if is_hdf5(text) or text.lower().endswith(HDF5_SUFFIXES):
+        return read_hdf5_array(p, dataset, what=what, key=where)
     with capture_tifffile_log(logging.WARNING) as messages:
         axes, data = _read_series(p, what)
+    missing = [m for m in messages if "failed to read" in m or "missing" in m]
+    if missing:
+        raise InputFileError(f"{p}: the {what} is an OME-TIFF series that lacks planes "
+                             f"({missing[0]}); put every file the OME-XML names next to it")
     broken = [m for m in messages if "invalid" in m or "corrupt" in m]
     if broken:
         raise InputFileError(f"{p}: the {what} TIFF is truncated or corrupt ({broken[0]}); "
@@ -129,6 +149,29 @@ def read_tiff_stack(path: str | os.PathLike[str], *, what: str = "bead scan",
     return data
 
 
+def _read_stack_parts(pattern: str, what: str, where: str) -> np.ndarray:
+    """The TIFF files matching `pattern`, in natural order, stacked along their first axis."""
+    import glob
+
+    from volrecon.io.frames import natural_sort_key
+
+    paths = sorted((p for p in glob.glob(pattern) if os.path.isfile(p)), key=natural_sort_key)
+    if not paths:
+        raise InputFileError(f"{pattern}: no file matches this pattern; check {where}")
+    parts: list[np.ndarray] = []
+    for path in paths:
+        part = read_tiff_stack(path, what=what, key=where)
+        part = part[np.newaxis] if part.ndim == 2 else part
+        if parts and (part.shape[1:] != parts[0].shape[1:] or part.dtype != parts[0].dtype):
+            raise InputFileError(
+                f"{path}: this part of the {what} has shape {part.shape} {part.dtype}, "
+                f"{paths[0]} {parts[0].shape} {parts[0].dtype}; every part must hold planes "
+                "of one size and type, move the odd file out of the pattern"
+            )
+        parts.append(part)
+    return np.concatenate(parts, axis=0)
+
+
 def _read_series(p: Path, what: str) -> tuple[str, np.ndarray]:
     import tifffile
 
@@ -136,9 +179,12 @@ def _read_series(p: Path, what: str) -> tuple[str, np.ndarray]:
         with tifffile.TiffFile(p) as tf:
             series = tf.series[0]
             axes = series.axes
-            size = p.stat().st_size
             for index, page in enumerate(series.pages):
-                problem = None if page is None else tiff_page_problem(page, size)
+                if page is None:
+                    raise InputFileError(f"{p}: plane {index} of the {what} is in no readable "
+                                         "file of its OME-TIFF series; put every file of the "
+                                         "series next to this one")
+                problem = tiff_page_problem(page, os.path.getsize(page.parent.filehandle.path))
                 if problem is not None:
                     raise InputFileError(f"{p}: page {index} of the {what} cannot be read: "
                                          f"{problem}; the file is damaged, export it again")

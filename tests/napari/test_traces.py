@@ -1,4 +1,4 @@
-"""Region masks, region means, ΔF/F and CSV export (no Qt needed)."""
+"""Region masks, region means, ΔF/F, CSV export, regions files and layers (no Qt needed)."""
 
 from __future__ import annotations
 
@@ -9,7 +9,19 @@ import numpy as np
 import pytest
 from dask.array.utils import assert_eq
 
-from volrecon.errors import ConfigError, DataError, ShapeError
+from volrecon.errors import ConfigError, DataError, InputFileError, ShapeError
+from volrecon.napari.region_shapes import (
+    RegionShape,
+    SpatialGrid,
+    read_regions_csv,
+    write_regions_csv,
+)
+from volrecon.napari.regions import (
+    labels_layer_data,
+    layer_regions,
+    layer_shapes,
+    shapes_layer_data,
+)
 from volrecon.napari.traces import (
     ball_region,
     delta_f_over_f,
@@ -173,3 +185,145 @@ def test_bad_regions_are_refused_with_their_name():
     region = polygon_region([(0, 0), (0, 2), (2, 2)], (3, 3))
     with pytest.raises(ShapeError, match=r"\(T, Y, X\)"):
         region_means(np.ones((2, 2, 3, 3)), [region])
+
+
+# ------------------------------------------------------------------ regions files and layers
+GRID = SpatialGrid(shape=(3, 20, 24), voxel_um=(2.0, 0.65, 0.65), origin_um=(5.0, 0.0, 0.0))
+
+
+def _shapes():
+    return [
+        RegionShape("bead 1", "ball", center_um=np.array([7.0, 6.1, 7.9]), radius_um=1.3),
+        RegionShape("cell, left", "polygon", z_um=9.0, half_thickness_planes=1,
+                    vertices_yx_um=np.array([[2.3, 3.6], [2.3, 8.8], [6.2, 8.8], [6.0, 3.1]])),
+        RegionShape("band", "polygon", vertices_yx_um=np.array([[9.0, 1.0], [9.0, 14.0],
+                                                               [11.0, 7.0]])),
+    ]
+
+
+def _same_voxels(a, b):
+    assert a.name == b.name and a.box == b.box
+    np.testing.assert_array_equal(a.mask, b.mask)
+
+
+def test_regions_csv_round_trip_and_schema(tmp_path):
+    import json
+    from pathlib import Path
+
+    import jsonschema
+
+    shapes = _shapes()
+    path = write_regions_csv(tmp_path / "regions.csv", shapes)
+    schema = json.loads((Path(__file__).parents[2] / "schemas" / "regions.schema.json")
+                        .read_text())
+    with path.open(newline="", encoding="utf-8") as handle:
+        rows = list(csv.DictReader(handle))
+    # Reference: the JSON Schema of one row (jsonschema's validator).
+    for row in rows + schema["examples"]:
+        jsonschema.validate(row, schema)
+    back = read_regions_csv(path)
+    assert [s.name for s in back] == ["bead 1", "cell, left", "band"]
+    for before, after in zip(shapes, back, strict=True):
+        assert (after.kind, after.radius_um, after.z_um, after.half_thickness_planes) == (
+            before.kind, before.radius_um, before.z_um, before.half_thickness_planes)
+        for field in ("center_um", "vertices_yx_um"):
+            if getattr(before, field) is not None:
+                np.testing.assert_array_equal(getattr(after, field), getattr(before, field))
+        _same_voxels(before.region(GRID), after.region(GRID))
+
+
+def test_regions_in_pixels_cover_the_voxels_a_hand_made_mask_does(tmp_path):
+    path = tmp_path / "px.csv"
+    path.write_text("name,kind,units,z,y,x,radius_um,half_thickness_planes,vertices_yx\n"
+                    "box,polygon,px,1,,,,,3.5 5.5;3.5 13.5;9.5 13.5;9.5 5.5\n"
+                    "bead,ball,px,2,10,12,1.0,,\n", encoding="utf-8")
+    box, bead = (s.region(GRID) for s in read_regions_csv(path, grid=GRID))
+    # Reference: pixel centres inside the rectangle on plane 1, written out by hand.
+    expected = np.zeros(GRID.shape, bool)
+    expected[1, 4:10, 6:14] = True
+    np.testing.assert_array_equal(_full_mask(box, GRID.shape), expected)
+    # Reference: voxels whose centres lie within 1 µm of voxel (2, 10, 12), numpy indices.
+    zz, yy, xx = np.indices(GRID.shape)
+    ball = ((zz - 2) * 2.0) ** 2 + ((yy - 10) * 0.65) ** 2 + ((xx - 12) * 0.65) ** 2 <= 1.0
+    np.testing.assert_array_equal(_full_mask(bead, GRID.shape), ball)
+    # The same regions given in micrometres (z = 5 + 2 µm per plane) cover the same voxels.
+    um = tmp_path / "um.csv"
+    um.write_text("name,kind,units,z,y,x,radius_um,half_thickness_planes,vertices_yx\n"
+                  "box,polygon,um,7.0,,,,,2.275 3.575;2.275 8.775;6.175 8.775;6.175 3.575\n"
+                  "bead,ball,um,9.0,6.5,7.8,1.0,,\n", encoding="utf-8")
+    for a, b in zip((box, bead), (s.region(GRID) for s in read_regions_csv(um)), strict=True):
+        _same_voxels(a, b)
+
+
+HEADER = "name,kind,units,z,y,x,radius_um,half_thickness_planes,vertices_yx\n"
+
+
+@pytest.mark.parametrize(("text", "message"), [
+    (HEADER + "a,circle,um,1,2,3,1,,\n", r"line 2: kind 'circle' is not"),
+    (HEADER + "a,ball,um,1,2,3,,,\n", r"line 2: a ball needs y, x and radius_um"),
+    (HEADER + "a,ball,um,1,2,3,1,,\nb,ball,um,1,two,3,1,,\n", r"line 3: column 'y' is 'two'"),
+    (HEADER + "a,polygon,um,,,,,,1 2;3 4\n", r"line 2: vertices_yx needs 3 or more"),
+    (HEADER + "a,polygon,um,,,,,,1 2;3 x;5 6\n", r"line 2: vertices_yx '1 2;3 x;5 6' is not"),
+    (HEADER + "a,polygon,um,,,,,-1,1 2;3 4;5 6\n", r"half_thickness_planes must be"),
+    (HEADER + "a,ball,inch,1,2,3,1,,\n", r"line 2: units 'inch'"),
+    (HEADER + "a,ball,px,1,2,3,1,,\n", r"line 2: units 'px' need the store's grid"),
+    (HEADER + ",ball,um,1,2,3,1,,\n", r"line 2: column 'name' is empty"),
+    (HEADER + "a,ball,um,1,2,3,nan,,\n", r"line 2: column 'radius_um' is 'nan'"),
+    (HEADER + "a,ball,um,1,2,3,1,,\na,ball,um,1,2,3,1,,\n", r"names a appear more than once"),
+    ("label,x,y\n1,2,3\n", r"no column name, kind, units"),
+    (HEADER, r"no regions"),
+])
+def test_bad_regions_csv_rows_are_named(tmp_path, text, message):
+    path = tmp_path / "regions.csv"
+    path.write_text(text, encoding="utf-8")
+    with pytest.raises(ConfigError, match=message):
+        read_regions_csv(path)
+
+
+def test_a_missing_regions_file_is_named(tmp_path):
+    with pytest.raises(InputFileError, match=r"nothing.csv: cannot read the regions file"):
+        read_regions_csv(tmp_path / "nothing.csv")
+
+
+def test_a_region_off_the_volume_is_refused_with_its_name():
+    off = RegionShape("far", "polygon", z_um=99.0, vertices_yx_um=np.array([[1, 1], [1, 5],
+                                                                             [5, 5]]))
+    with pytest.raises(ConfigError, match=r"far: depth 99 µm \(plane 47\) is outside"):
+        off.region(GRID)
+    flat = RegionShape("flat", "ball", center_um=np.array([1.0, 2.0]), radius_um=1.0)
+    with pytest.raises(ConfigError, match="flat: ball centre has 2 coordinates"):
+        flat.region(GRID)
+
+
+def _image_layer():
+    from napari.layers import Image
+
+    return Image(np.zeros((4, *GRID.shape), np.float32), scale=(0.5, *GRID.voxel_um),
+                 translate=(0.0, *GRID.origin_um), name="volumes")
+
+
+def test_regions_through_a_shapes_layer_and_back_cover_the_same_voxels():
+    from napari.layers import Layer
+
+    image = _image_layer()
+    shapes = _shapes()
+    layer = Layer.create(*shapes_layer_data(shapes, GRID))
+    assert list(layer.shape_type) == ["ellipse", "polygon", "polygon"]
+    back = layer_shapes(image, layer, radius_um=99.0, half_thickness_planes=0)
+    assert [s.kind for s in back] == ["ball", "polygon", "polygon"]
+    for before, after in zip(shapes, layer_regions(image, layer), strict=True):
+        _same_voxels(before.region(GRID), after)
+    assert back[2].z_um is None  # the band still spans every plane
+
+
+def test_regions_through_a_labels_layer_and_back_cover_the_same_voxels():
+    from napari.layers import Layer
+
+    image = _image_layer()
+    regions = [s.region(GRID) for s in _shapes()[::2]]  # the ball and the band: apart
+    assert not (_full_mask(regions[0], GRID.shape) & _full_mask(regions[1], GRID.shape)).any()
+    layer = Layer.create(*labels_layer_data(regions, GRID))
+    assert layer.data.max() == 2
+    for before, after in zip(regions, layer_regions(image, layer), strict=True):
+        np.testing.assert_array_equal(_full_mask(after, GRID.shape),
+                                      _full_mask(before, GRID.shape))

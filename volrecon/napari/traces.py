@@ -101,8 +101,9 @@ def ball_region(center: ArrayLike, radius_um: float, shape: Sequence[int],
                          f"per axis of the grid {tuple(shape)}")
     nearest = np.rint(c).astype(int)
     if np.any(nearest < 0) or np.any(nearest >= np.asarray(shape)):
-        raise ConfigError(f"{name}: centre {tuple(np.round(c, 2))} (voxels) is outside the "
-                          f"volume {tuple(shape)}; place it on the volume")
+        where = tuple(float(v) for v in np.round(c, 2))
+        raise ConfigError(f"{name}: centre {where} (voxels) is outside the volume "
+                          f"{tuple(shape)}; place it on the volume")
     half = radius_um / size
     box = _clip_box(np.floor(c - half), np.ceil(c + half) + 1, shape)
     grids = np.meshgrid(*(np.arange(s.start, s.stop) for s in box), indexing="ij")
@@ -293,7 +294,7 @@ def delta_f_over_f(traces_tr: Any, *, baseline_percentile: float = 10.0) -> np.n
 
 
 def write_traces_csv(path: str | os.PathLike[str], traces_tr: Any, *, names: Sequence[str],
-                     time_s: Any, value: str = "mean") -> Path:
+                     time_s: Any, value: str = "mean", first_frame: int = 0) -> Path:
     """Write traces as CSV: columns ``frame, time_s`` and one per region.
 
     Parameters
@@ -307,6 +308,8 @@ def write_traces_csv(path: str | os.PathLike[str], traces_tr: Any, *, names: Seq
         Time of each frame, seconds.
     value : str
         What the numbers are (``"mean"`` or ``"dF/F"``); written into each region header.
+    first_frame : int
+        Frame number of the first row (the ``frame`` column counts on from it).
 
     Returns
     -------
@@ -323,5 +326,5 @@ def write_traces_csv(path: str | os.PathLike[str], traces_tr: Any, *, names: Seq
         writer = csv.writer(handle)
         writer.writerow(["frame", "time_s", *(f"{n} {value}" for n in names)])
         for t, (when, row) in enumerate(zip(times, traces, strict=True)):
-            writer.writerow([t, repr(float(when)), *(repr(float(v)) for v in row)])
+            writer.writerow([first_frame + t, repr(float(when)), *(repr(float(v)) for v in row)])
     return target

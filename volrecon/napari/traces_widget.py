@@ -1,4 +1,5 @@
-"""The time-traces dock widget: mean intensity over time in drawn regions, ΔF/F, CSV."""
+"""The time-traces dock widget: mean intensity over time in drawn regions, ΔF/F, CSV; the
+regions themselves saved to and loaded from a regions CSV."""
 
 from __future__ import annotations
 
@@ -23,7 +24,14 @@ from magicgui.widgets.bases import Widget
 from volrecon.errors import ConfigError, VolreconError
 from volrecon.napari._plot import PlotCanvas
 from volrecon.napari._widget_tools import BackgroundJob, chosen_path
-from volrecon.napari.regions import frame_times_s, layer_regions
+from volrecon.napari.region_shapes import read_regions_csv, write_regions_csv
+from volrecon.napari.regions import (
+    frame_times_s,
+    image_grid,
+    layer_regions,
+    layer_shapes,
+    shapes_layer_data,
+)
 from volrecon.napari.traces import delta_f_over_f, region_means, write_traces_csv
 
 if TYPE_CHECKING:
@@ -68,8 +76,11 @@ class TimeTracesWidget(Container[Widget]):
     """Plot mean intensity over time in regions drawn on a 4-D (or 3-D) image layer.
 
     Points become balls of the chosen radius; rectangles, polygons and ellipses of a Shapes
-    layer become prisms through the plane they were drawn on. ΔF/F divides by a low
-    percentile of each trace. "Export CSV" writes what the plot shows.
+    layer become prisms through the plane they were drawn on; a Labels layer gives one region
+    per label. ΔF/F divides by a low percentile of each trace. "Export CSV" writes what the
+    plot shows. "Save regions" writes the chosen layer's regions to a regions CSV
+    (micrometres; ``volrecon export --traces`` reads it); "Load regions" adds one as a Shapes
+    layer.
 
     Parameters
     ----------
@@ -90,14 +101,22 @@ class TimeTracesWidget(Container[Widget]):
         self._csv = FileEdit(label="CSV file", mode=FileDialogMode.OPTIONAL_FILE,
                              filter="CSV (*.csv)")
         self._export_button = PushButton(text="Export CSV")
+        self._regions_file = FileEdit(label="regions file", mode=FileDialogMode.OPTIONAL_FILE,
+                                      filter="CSV (*.csv)")
+        self._save_regions_button = PushButton(text="Save regions")
+        self._load_regions_button = PushButton(text="Load regions")
         self._message = Label(value="")
         super().__init__(widgets=[self._image, self._regions, self._radius, self._thickness,
                                   self._dff, self._percentile, self._plot_button, self._csv,
-                                  self._export_button, self._message])
+                                  self._export_button, self._regions_file,
+                                  self._save_regions_button, self._load_regions_button,
+                                  self._message])
         self._plot = PlotCanvas(rows=1, height_in=2.2)
         self.native.layout().addWidget(self._plot.widget)
         self._plot_button.changed.connect(self.start)
         self._export_button.changed.connect(self.export)
+        self._save_regions_button.changed.connect(self.save_regions)
+        self._load_regions_button.changed.connect(self.load_regions)
         self._dff.changed.connect(self._redraw)
         self._percentile.changed.connect(self._redraw)
         for event in (self._viewer.layers.events.inserted, self._viewer.layers.events.removed):
@@ -113,10 +132,10 @@ class TimeTracesWidget(Container[Widget]):
                 if isinstance(layer, Image) and layer.ndim in (3, 4)]
 
     def _region_choices(self, _widget: Any = None) -> list[str]:
-        from napari.layers import Points, Shapes
+        from napari.layers import Labels, Points, Shapes
 
         return [layer.name for layer in self._viewer.layers
-                if isinstance(layer, Points | Shapes)]
+                if isinstance(layer, Points | Shapes | Labels)]
 
     def _refresh_choices(self, _event: Any = None) -> None:
         self._image.reset_choices()
@@ -127,7 +146,8 @@ class TimeTracesWidget(Container[Widget]):
         """Compute the traces in a worker thread; returns the worker (None on bad input)."""
         try:
             if self._image.value is None or self._regions.value is None:
-                raise ConfigError("choose an image layer and a Points or Shapes layer first")
+                raise ConfigError("choose an image layer and a Points, Shapes or Labels layer "
+                                  "first")
             image = self._viewer.layers[self._image.value]
             regions_layer = self._viewer.layers[self._regions.value]
             regions = layer_regions(image, regions_layer, radius_um=self._radius.value,
@@ -194,3 +214,45 @@ class TimeTracesWidget(Container[Widget]):
             return None
         self._message.value = f"wrote {path}"
         return path
+
+    def save_regions(self, _value: Any = None) -> Path | None:
+        """Write the chosen regions layer to the regions file; returns its path (None on error)."""
+        target = chosen_path(self._regions_file)
+        try:
+            if target is None:
+                raise ConfigError("choose a regions file to write first")
+            if self._image.value is None or self._regions.value is None:
+                raise ConfigError("choose an image layer and a Points or Shapes layer first")
+            shapes = layer_shapes(self._viewer.layers[self._image.value],
+                                  self._viewer.layers[self._regions.value],
+                                  radius_um=self._radius.value,
+                                  half_thickness_planes=self._thickness.value)
+            path = write_regions_csv(target, shapes)
+        except (VolreconError, OSError) as exc:
+            self._message.value = str(exc)
+            return None
+        self._message.value = f"wrote {len(shapes)} regions to {path}"
+        return path
+
+    def load_regions(self, _value: Any = None) -> Any:
+        """Add the regions file as a Shapes layer on the chosen image; returns the layer."""
+        from napari.layers import Layer
+
+        source = chosen_path(self._regions_file)
+        try:
+            if source is None:
+                raise ConfigError("choose a regions file to read first")
+            if self._image.value is None:
+                raise ConfigError("choose the image layer the regions belong to first")
+            grid = image_grid(self._viewer.layers[self._image.value])
+            shapes = read_regions_csv(source, grid=grid)
+            for shape in shapes:
+                shape.region(grid)  # refuse regions off the image now, naming them
+            layer = Layer.create(*shapes_layer_data(shapes, grid, name=source.stem))
+        except (VolreconError, OSError) as exc:
+            self._message.value = str(exc)
+            return None
+        self._viewer.add_layer(layer)
+        self._regions.value = layer.name
+        self._message.value = f"loaded {len(shapes)} regions from {source}"
+        return layer

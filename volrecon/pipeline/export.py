@@ -1,4 +1,5 @@
-"""Export a job's volumes (or their max projections) as an ImageJ hyperstack TIFF."""
+"""Export a job's volumes (or their max projections) as an ImageJ hyperstack TIFF, and the
+mean intensity over time in regions as a traces CSV."""
 
 from __future__ import annotations
 
@@ -14,7 +15,7 @@ from volrecon.io.files import replacing
 from volrecon.io.ome_zarr import parse_ome_image
 from volrecon.pipeline.store import DAMAGE_ERRORS, JobStore
 
-__all__ = ["export_tiff", "parse_frame_range"]
+__all__ = ["export_tiff", "export_traces", "parse_frame_range"]
 
 #: ImageJ hyperstacks are classic TIFF: keep well below the 4 GiB offset limit.
 MAX_IMAGEJ_BYTES = 4_000_000_000
@@ -144,4 +145,82 @@ def export_tiff(store_path: str | os.PathLike[str], tiff_path: str | os.PathLike
             f"--tiff {out}: cannot write the file ({exc.strerror or exc}); choose a path in a "
             "writable folder with enough free space"
         ) from exc
+    return out
+
+
+def export_traces(store_path: str | os.PathLike[str], regions_path: str | os.PathLike[str],
+                  traces_path: str | os.PathLike[str], *, frames: str | None = None) -> Path:
+    """Write the mean intensity per frame of each region of a regions CSV as a traces CSV.
+
+    Parameters
+    ----------
+    store_path : str or path
+        A job's output store.
+    regions_path : str or path
+        A regions CSV (``volrecon.napari.region_shapes``; the time-traces widget writes
+        them): coordinates in micrometres (the store's physical coordinates) or voxels.
+    traces_path : str or path
+        The CSV to write (replaced if it exists): ``frame, time_s`` and one column per region,
+        as the widget's "Export CSV". Frames not done are NaN.
+    frames : str, optional
+        ``"a:b"`` store frames (half-open); default all.
+
+    Returns
+    -------
+    Path
+        `traces_path`.
+
+    Notes
+    -----
+    The regions are placed on the store's grid with its OME scale and translation and
+    averaged with the same functions as the widget (``RegionShape.region``,
+    ``region_means``), reading only the chunks they touch.
+
+    Raises
+    ------
+    InputFileError
+        If the store or the regions file cannot be read, or a chunk is damaged.
+    ConfigError
+        For a bad regions row, a region off the volume or a bad frame range.
+    OutputWriteError
+        If `traces_path` cannot be written; an existing file there is left unchanged.
+    """
+    import dask.array as da
+
+    from volrecon.napari.region_shapes import SpatialGrid, read_regions_csv
+    from volrecon.napari.traces import region_means, write_traces_csv
+
+    store = JobStore.open(store_path, mode="r")
+    selected = parse_frame_range(frames, store.n_frames)
+    level = parse_ome_image(store.group.attrs.asdict(), source=store_path).levels[0]
+    grid = SpatialGrid(shape=tuple(int(n) for n in store.image.shape[1:]),
+                       voxel_um=tuple(float(s) for s in level.scale[1:]),
+                       origin_um=tuple(float(t) for t in level.translation[1:]))
+    shapes = read_regions_csv(regions_path, grid=grid)
+    try:
+        regions = [shape.region(grid) for shape in shapes]
+    except ConfigError as exc:
+        raise ConfigError(f"{regions_path}: region {exc}") from exc
+    out = Path(traces_path)
+    if out.is_dir():
+        raise OutputWriteError(f"--out {out}: is a folder; give the name of a CSV file")
+    volumes = da.from_zarr(store.image)[selected]  # type: ignore[no-untyped-call]
+    try:
+        means = np.asarray(region_means(volumes, regions).compute())
+    except DAMAGE_ERRORS as exc:
+        raise InputFileError(f"{store.path}: a chunk of frames {selected.start}:{selected.stop} "
+                             f"cannot be read ({exc}); the store is damaged there: export other "
+                             "frames with --frames, or run volrecon verify") from exc
+    times = level.translation[0] + level.scale[0] * np.arange(selected.start, selected.stop,
+                                                              dtype=np.float64)
+    try:
+        with replacing(out) as partial:
+            write_traces_csv(partial, means, names=[r.name for r in regions], time_s=times,
+                             first_frame=selected.start)
+    except OSError as exc:
+        if isinstance(exc, VolreconError):
+            raise
+        raise OutputWriteError(
+            f"--out {out}: cannot write the file ({exc.strerror or exc}); choose a path in a "
+            "writable folder") from exc
     return out

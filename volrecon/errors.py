@@ -22,6 +22,7 @@ __all__ = [
     "UnitWarning",
     "VolreconError",
     "VolreconWarning",
+    "WorkersLostError",
 ]
 
 
@@ -63,6 +64,10 @@ class StoreLockedError(VolreconError, RuntimeError):
 
 class BackendError(VolreconError, RuntimeError):
     """The requested compute device (e.g. the GPU through CuPy) is not available."""
+
+
+class WorkersLostError(VolreconError, RuntimeError):
+    """Every dask worker of a run was lost, or workers kept dying while running one task."""
 
 
 class VolreconWarning(UserWarning):

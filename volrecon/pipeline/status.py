@@ -23,8 +23,8 @@ from volrecon.pipeline.store import (
     is_job_store,
 )
 
-__all__ = ["StoreStatus", "format_duration", "format_last_verify", "format_status",
-           "store_status"]
+__all__ = ["StoreStatus", "format_duration", "format_last_verify", "format_lost_workers",
+           "format_status", "store_status"]
 
 
 @dataclass(frozen=True)
@@ -150,9 +150,23 @@ def format_status(status: StoreStatus, *, max_failures: int = 20) -> list[str]:
         lines.append(f"throughput: {status.frames_per_second:.3g} frames/s ({which})")
     if status.running and np.isfinite(status.seconds_left):
         lines.append(f"time left: {format_duration(status.seconds_left)}")
+    if status.runs and status.runs[-1].get("lost_worker_count"):
+        which = "current run" if status.running else "last run"
+        lines.append(format_lost_workers(status.runs[-1], which=which))
     if status.last_verify is not None:
         lines.append(format_last_verify(status.last_verify))
     return lines
+
+
+def format_lost_workers(run: dict[str, Any], *, which: str = "last run",
+                        max_workers: int = 5) -> str:
+    """``lost dask workers: <n> in the <which> (<address> pid <pid> at <time>, …)``."""
+    count = int(run.get("lost_worker_count", 0))
+    listed = run.get("lost_workers", [])
+    shown = [f"{w.get('address')} pid {w.get('pid')} at {w.get('lost')}"
+             for w in listed[:max_workers]]
+    more = ", …" if count > len(shown) else ""
+    return f"lost dask workers: {count} in the {which} ({', '.join(shown)}{more})"
 
 
 def format_last_verify(record: dict[str, Any], *, max_frames: int = 10) -> str:

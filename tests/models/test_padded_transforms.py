@@ -6,6 +6,7 @@ import numpy as np
 import pytest
 
 from volrecon.backend import get_backend
+from volrecon.models.depth_convolution import correlation_window
 
 
 @pytest.mark.parametrize(("shape", "grid"), [((3, 7, 9), (14, 18)), ((2, 1, 5, 6), (11, 10)),
@@ -62,3 +63,22 @@ def test_run_split_covers_every_index_once(threads, n):
     sizes = np.diff(bounds)
     assert bounds[0] == 0 and bounds[-1] == n and len(sizes) <= threads
     assert sizes.min() >= 1 and sizes.max() - sizes.min() <= 1
+
+
+@pytest.mark.parametrize(("grid", "window"), [((12, 15), (5, 7)), ((8, 16), (4, 8)),
+                                              ((1, 1), (1, 1))])
+@pytest.mark.parametrize("dtype, rtol", [(np.float32, 1e-5), (np.float64, 1e-12)])
+def test_correlation_window(rng, grid, window, dtype, rtol):
+    be = get_backend("cpu", threads=2)
+    complex_dtype = np.complex64 if dtype == np.float32 else np.complex128
+    products = np.fft.rfft2(rng.standard_normal((2, 3, *grid))).astype(complex_dtype)
+    # Reference: numpy.fft.irfft2 of the conjugated products on the whole grid (float64),
+    # then the window [0:Y, 0:X].
+    expected = np.fft.irfft2(products.astype(np.complex128).conj(), s=grid)
+    expected = expected[..., : window[0], : window[1]]
+    out = np.full((2, 3, *window), np.nan, dtype=dtype)
+    got = correlation_window(products, grid, window, be, out=out)
+    assert got is out
+    np.testing.assert_allclose(got, expected, rtol=rtol, atol=rtol * np.abs(expected).max())
+    fresh = correlation_window(np.fft.rfft2(rng.standard_normal(grid)), grid, window, be)
+    assert fresh.shape == window

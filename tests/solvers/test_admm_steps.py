@@ -123,3 +123,33 @@ def test_compiled_and_array_solves_agree(rng, tv, l1):
     (v_array, it_array, *_), (v_compiled, it_compiled, *_) = runs
     assert abs(it_array - it_compiled) <= 5
     np.testing.assert_allclose(v_compiled, v_array, atol=1e-4 * float(v_array.max()))
+
+
+def test_volume_solve_factors_follow_the_penalties(rng, steps):
+    # The compiled steps keep factors per penalty set: a change of μ (residual balancing, a
+    # window's per-frame μ₃) must never reuse a stale set. Reference: the array steps.
+    array, compiled = steps
+    nz, py, nf = 5, 6, 4
+    r, h, xh = _complex(rng, (nz, py, nf)), _complex(rng, (nz, py, nf)), _complex(rng, (py, nf))
+    lateral = (4 * rng.random((py, nf))).astype(F32)
+    for mu1, mu2, mu3, e in [(1.0, 0.5, 0.8, 0.2), (2.0, 0.5, 0.8, 0.2), (1.0, 0.5, 0.8, 0.2),
+                             (1.0, 0.5, 1.6, 0.2), (1.0, 1.0, 0.8, 0.4)]:
+        got, want = r.copy(), r.copy()
+        mv = compiled.volume_solve(got, h, xh, lateral, 1.0, mu1, mu2, mu3, e)
+        mv_want = array.volume_solve(want, h, xh, lateral, 1.0, mu1, mu2, mu3, e)
+        np.testing.assert_allclose(got, want, atol=1e-5)
+        np.testing.assert_allclose(mv, mv_want, atol=1e-5)
+
+
+def test_volume_solve_without_tv_uses_the_given_gain(rng, steps):
+    # The gain Σ_z|Ĥ_z|² handed in (ADMM's own) must give what the steps compute themselves;
+    # reference: the array steps, which never use it.
+    array, compiled = steps
+    nz, py, nf = 4, 6, 5
+    r, h, xh = _complex(rng, (nz, py, nf)), _complex(rng, (nz, py, nf)), _complex(rng, (py, nf))
+    gain = (np.abs(h.astype(np.complex128)) ** 2).sum(axis=0).astype(F32)
+    got, want = r.copy(), r.copy()
+    mv = compiled.volume_solve(got, h, xh, None, 2.0, 1.5, 0.0, 0.9, 0.0, gain=gain)
+    mv_want = array.volume_solve(want, h, xh, None, 2.0, 1.5, 0.0, 0.9, 0.0)
+    np.testing.assert_allclose(got, want, atol=1e-5)
+    np.testing.assert_allclose(mv, mv_want, atol=1e-5)

@@ -14,7 +14,8 @@ from volrecon.models.base import Geometry, PSFModel
 if TYPE_CHECKING:
     from volrecon._typing import Array
 
-__all__ = ["CHUNK_BYTES", "DepthConvolutionPSF", "plane_chunks", "psf_spectra"]
+__all__ = ["CHUNK_BYTES", "DepthConvolutionPSF", "correlation_window", "plane_chunks",
+           "psf_spectra"]
 
 
 def psf_spectra(psf_zyx: Array, padded_shape: tuple[int, int], backend: Backend) -> Array:
@@ -31,6 +32,31 @@ def psf_spectra(psf_zyx: Array, padded_shape: tuple[int, int], backend: Backend)
     padded[..., :ny, :nx] = psf_zyx
     padded = xp.roll(padded, (-(ny // 2), -(nx // 2)), axis=(-2, -1))
     return backend.rfft2(padded, padded_shape)
+
+
+def correlation_window(products: Array, padded_shape: tuple[int, int],
+                       window_yx: tuple[int, int], backend: Backend, *,
+                       out: Array | None = None) -> Array:
+    """``irfft2(conj(P))[..., :Y, :X]`` from products ``P = Ĥ·conj(B̂)``: a correlation with
+    h, windowed, without a conjugated copy of the spectra and without reversing rows.
+
+    For real results ``ifft(conj(P)) = conj(fft(P))/n`` along y, and along x the inverse real
+    transform of conjugated coefficients is the index-reversed one, so the y-transform runs
+    forward (scaled by ``1/Py``) and only the columns of the x-window are reversed, in the copy
+    into `out` that cropping makes anyway. `products` is used as scratch space (overwritten).
+    The inverse along x runs only on the Y rows kept.
+    """
+    px = padded_shape[1]
+    ny, nx = window_yx
+    kw = {"workers": backend.threads} if backend.device == "cpu" else {}
+    columns = backend.fft.fft(products, axis=-2, norm="forward", overwrite_x=True, **kw)
+    # A view of rows [0, Y): the inverse along x may use it as scratch (columns is ours).
+    full = backend.fft.irfft(columns[..., :ny, :], n=px, axis=-1, overwrite_x=True, **kw)
+    if out is None:
+        out = backend.xp.empty((*full.shape[:-1], nx), dtype=full.dtype)
+    out[..., 0] = full[..., 0]
+    out[..., 1:] = full[..., : px - nx : -1]
+    return out
 
 
 #: Spectrum bytes per block of planes that forward / adjoint transform at once on the CPU.
@@ -83,7 +109,7 @@ class DepthConvolutionPSF(PSFModel):
     inverse real 2-D FFT; ``adjoint`` one forward and Z inverse. The volume fills only Y of
     the Py rows, so the forward transforms along x skip the zero rows, and the adjoint's
     inverse along x runs only on the Y rows it keeps (:meth:`volrecon.backend.Backend.rfft2`,
-    :meth:`~volrecon.backend.Backend.irfft2_window`). On the CPU the planes go through in
+    :func:`correlation_window`). On the CPU the planes go through in
     blocks of about `CHUNK_BYTES` of spectra, so that no temporary has Z planes and each
     block's transforms run in the cache.
     """
@@ -124,16 +150,14 @@ class DepthConvolutionPSF(PSFModel):
         return be.irfft2_window(total, shape, self.shape_out, overwrite=True)
 
     def _adjoint(self, images: Array) -> Array:
-        # Correlation with h: irfft2(conj(Ĥ)·B̂) is, for real signals, the circular index
-        # reversal of irfft2(Ĥ·conj(B̂)); reversing only the window kept avoids a conjugated
-        # copy of the spectra.
+        # Correlation with h, irfft2(conj(Ĥ)·B̂), from the products Ĥ·conj(B̂).
         be = self.backend
         spectrum = be.rfft2(images, self.padded_shape)
         be.xp.conjugate(spectrum, out=spectrum)
         out = be.xp.empty((images.shape[0], *self.shape_in), dtype=self.dtype)
         for z0, z1 in self._chunks:
-            be.irfft2_window(spectrum[:, None] * self._spectra[z0:z1], self.padded_shape,
-                             self.shape_out, reverse=True, overwrite=True, out=out[:, z0:z1])
+            correlation_window(spectrum[:, None] * self._spectra[z0:z1], self.padded_shape,
+                               self.shape_out, be, out=out[:, z0:z1])
         return out
 
     def store_arrays(self) -> dict[str, np.ndarray]:

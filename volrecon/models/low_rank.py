@@ -9,7 +9,7 @@ import numpy as np
 from volrecon.backend import Backend, get_backend
 from volrecon.errors import DataError, ShapeError
 from volrecon.models.base import Geometry, PSFModel
-from volrecon.models.depth_convolution import psf_spectra
+from volrecon.models.depth_convolution import correlation_window, psf_spectra
 
 if TYPE_CHECKING:
     from volrecon._typing import Array
@@ -143,12 +143,11 @@ class LowRankDepthPSF(PSFModel):
         be = self.backend
         shape = self.padded_shape
         ny, nx = self.shape_out
-        # Correlation with each kernel as the index-reversed window of the convolution with
-        # conj(B̂), as in DepthConvolutionPSF (no conjugated copy of the spectra).
+        # Correlation with each kernel from the products Ĝ_r·conj(B̂), as in
+        # DepthConvolutionPSF (no conjugated copy of the spectra).
         spectrum = be.rfft2(images, shape)
         be.xp.conjugate(spectrum, out=spectrum)
-        planes = be.irfft2_window(spectrum[:, None] * self._spectra, shape, self.shape_out,
-                                  reverse=True, overwrite=True)
+        planes = correlation_window(spectrum[:, None] * self._spectra, shape, self.shape_out, be)
         return (self._weights @ planes.reshape(-1, self.rank, ny * nx)).reshape(
             -1, self.n_planes, ny, nx)
 

@@ -306,9 +306,13 @@ def solve_admm_window(frames: Array, model: PSFModel, *, iterations: int, tv: fl
             x_hat *= mu[0]
             mv_hat = steps.volume_solve(
                 r_hat, p.h, x_hat, p.lateral, 1.0 if p.use_tv else mu[2], mu[0], mu[1],
-                mu[2] + shifts[k], mu[1] * tv_z_weight * tv_z_weight)
-            v[k] = be.irfft2(r_hat, shape, overwrite=True)
-            mv[k] = be.irfft2(mv_hat, shape)
+                mu[2] + shifts[k], mu[1] * tv_z_weight * tv_z_weight, gain=p.sum_abs2)
+            if n_frames == 1:  # the transforms' new arrays become the iterates: no copies
+                v = be.irfft2(r_hat, shape, overwrite=True)[None]
+                mv = be.irfft2(mv_hat, shape, overwrite=True)[None]
+            else:
+                v[k] = be.irfft2(r_hat, shape, overwrite=True)
+                mv[k] = be.irfft2(mv_hat, shape, overwrite=True)
         del source, r_hat
         if temporal:
             v = be.fft.idct(v, type=2, axis=0, norm="ortho", overwrite_x=True)

@@ -100,8 +100,14 @@ def w_update(v, wmg, rhs, ymb, use_tv, w_out, save, compare, change, thresh, rho
     _, ny, nx = v.shape
     div = np.empty(nx, np.float32)
     w = np.zeros(nx, np.float32)
+    # Per-column partial sums of the comparison: an element-wise accumulation vectorises,
+    # a running scalar sum without reassociation does not (4× on the whole step).
+    lane_change = np.empty(nx, np.float32)
+    lane_norm = np.empty(nx, np.float32)
     keep = _ONE - rho
     for z in range(lo, hi):
+        lane_change[:] = _ZERO
+        lane_norm[:] = _ZERO
         for i in range(ny):
             vr, mr = v[z, i], wmg[z, i]
             width = sx if i < sy else 0
@@ -114,13 +120,10 @@ def w_update(v, wmg, rhs, ymb, use_tv, w_out, save, compare, change, thresh, rho
             if save:
                 wo = w_out[z, i]
                 if compare:  # Σ(w − previous w)² and Σw², then overwrite
-                    s = _ZERO
-                    q = _ZERO
                     for j in range(nx):
-                        s += (w[j] - wo[j]) * (w[j] - wo[j])
-                        q += w[j] * w[j]
-                    change[z, 0] += s
-                    change[z, 1] += q
+                        d = w[j] - wo[j]
+                        lane_change[j] += d * d
+                        lane_norm[j] += w[j] * w[j]
                 for j in range(nx):
                     wo[j] = w[j]
             if use_tv:
@@ -128,80 +131,14 @@ def w_update(v, wmg, rhs, ymb, use_tv, w_out, save, compare, change, thresh, rho
                 rr = rhs[z, i]
                 for j in range(nx):
                     rr[j] = mu3 * mr[j] + mu2 * div[j]
-
-
-@_jit
-def volume_solve(r, h, xh, lateral, use_lateral, scale, mu1, mu2, mu3, e, mv,
-                 lo, hi):
-    """r, h: (Z, Py, 2F) and xh, mv: (Py, 2F) float32 views of complex64 spectra; the
-    system's a is conj(h)."""
-    nz, _, nf2 = r.shape
-    nf = nf2 // 2
-    cp = np.empty((nz, nf), np.float32)
-    ur = np.empty((nz, nf), np.float32)  # T⁻¹(scale·r + a·x̂), real and imaginary parts
-    ui = np.empty((nz, nf), np.float32)
-    pr = np.empty((nz, nf), np.float32)  # T⁻¹a
-    pi = np.empty((nz, nf), np.float32)
-    base = np.empty(nf, np.float32)
-    sr = np.empty(nf, np.float32)
-    si = np.empty(nf, np.float32)
-    q = np.empty(nf, np.float32)
-    for i in range(lo, hi):
-        for j in range(nf):
-            base[j] = mu2 * lateral[i, j] + mu3 if use_lateral else mu3
-        xr_row = xh[i]
-        # Thomas forward sweep for T u = scale·r + a·x̂ and T p = a, T = base + e·N
-        for k in range(nz):
-            nk = _ZERO if nz == 1 else (_ONE if k == 0 or k == nz - 1 else _TWO)
-            rk, hk = r[k, i], h[k, i]
-            km = max(k - 1, 0)
-            carry = e if k > 0 else _ZERO
-            if k == 0:  # nothing carried into the first plane (and cp, u, p unset there)
-                cp[0, :] = _ZERO
-                ur[0, :] = _ZERO
-                ui[0, :] = _ZERO
-                pr[0, :] = _ZERO
-                pi[0, :] = _ZERO
-            for j in range(nf):
-                are, aim = hk[2 * j], -hk[2 * j + 1]
-                xre, xim = xr_row[2 * j], xr_row[2 * j + 1]
-                inv = _ONE / (base[j] + e * nk + carry * cp[km, j])
-                ur[k, j] = (scale * rk[2 * j] + are * xre - aim * xim + carry * ur[km, j]) * inv
-                ui[k, j] = (scale * rk[2 * j + 1] + are * xim + aim * xre
-                            + carry * ui[km, j]) * inv
-                pr[k, j] = (are + carry * pr[km, j]) * inv
-                pi[k, j] = (aim + carry * pi[km, j]) * inv
-                cp[k, j] = -e * inv
-        for k in range(nz - 2, -1, -1):
-            for j in range(nf):
-                c = cp[k, j]
-                ur[k, j] -= c * ur[k + 1, j]
-                ui[k, j] -= c * ui[k + 1, j]
-                pr[k, j] -= c * pr[k + 1, j]
-                pi[k, j] -= c * pi[k + 1, j]
-        # s = aᴴu and q = aᴴp (real: T is symmetric positive definite)
-        sr[:] = _ZERO
-        si[:] = _ZERO
-        q[:] = _ZERO
-        for k in range(nz):
-            hk = h[k, i]
-            for j in range(nf):
-                are, aim = hk[2 * j], -hk[2 * j + 1]
-                sr[j] += are * ur[k, j] + aim * ui[k, j]
-                si[j] += are * ui[k, j] - aim * ur[k, j]
-                q[j] += are * pr[k, j] + aim * pi[k, j]
-        mvr = mv[i]
-        for j in range(nf):
-            g = _ONE / (_ONE + mu1 * q[j])
-            sr[j] *= g
-            si[j] *= g
-            mvr[2 * j] = sr[j]
-            mvr[2 * j + 1] = si[j]
-        for k in range(nz):
-            rk = r[k, i]
-            for j in range(nf):
-                rk[2 * j] = ur[k, j] - mu1 * (sr[j] * pr[k, j] - si[j] * pi[k, j])
-                rk[2 * j + 1] = ui[k, j] - mu1 * (sr[j] * pi[k, j] + si[j] * pr[k, j])
+        if save and compare:
+            s = 0.0
+            q = 0.0
+            for j in range(nx):
+                s += lane_change[j]
+                q += lane_norm[j]
+            change[z, 0] += s
+            change[z, 1] += q
 
 
 @_jit_sum
@@ -303,3 +240,137 @@ def gradient_minus(v, p, wz, lo, hi):
                 pr = p[c, z, i]
                 for j in range(nx):
                     pr[j] = g[c, j] - pr[j]
+
+
+@_jit
+def volume_factors(h, lateral, use_lateral, mu1, mu2, mu3, e, inv, p, g, qg, lo, hi):
+    """The data-independent part of the volume solve (``ArraySteps.volume_solve``) on rows
+    [lo, hi): the Thomas pivots' inverses ``inv`` (Z, Py, F), ``p = T⁻¹a`` (Z, Py, 2F),
+    ``g = 1/(1 + μ₁aᴴp)`` and ``qg = aᴴp·g`` (Py, F); h and p are float32 views of complex64
+    spectra, a = conj(h)."""
+    nz, _, nf2 = h.shape
+    nf = nf2 // 2
+    base = np.empty(nf, np.float32)
+    q = np.empty(nf, np.float32)
+    for i in range(lo, hi):
+        for j in range(nf):
+            base[j] = mu2 * lateral[i, j] + mu3 if use_lateral else mu3
+        for k in range(nz):
+            nk = _ZERO if nz == 1 else (_ONE if k == 0 or k == nz - 1 else _TWO)
+            hk, pk, ik = h[k, i], p[k, i], inv[k, i]
+            if k == 0:
+                for j in range(nf):
+                    d = _ONE / (base[j] + e * nk)
+                    ik[j] = d
+                    pk[2 * j] = hk[2 * j] * d
+                    pk[2 * j + 1] = -hk[2 * j + 1] * d
+            else:
+                pp, ip = p[k - 1, i], inv[k - 1, i]
+                for j in range(nf):
+                    d = _ONE / (base[j] + e * nk - e * e * ip[j])
+                    ik[j] = d
+                    pk[2 * j] = (hk[2 * j] + e * pp[2 * j]) * d
+                    pk[2 * j + 1] = (-hk[2 * j + 1] + e * pp[2 * j + 1]) * d
+        for k in range(nz - 2, -1, -1):
+            pk, pn, ik = p[k, i], p[k + 1, i], inv[k, i]
+            for j in range(nf):
+                c = e * ik[j]
+                pk[2 * j] += c * pn[2 * j]
+                pk[2 * j + 1] += c * pn[2 * j + 1]
+        q[:] = _ZERO
+        for k in range(nz):
+            hk, pk = h[k, i], p[k, i]
+            for j in range(nf):
+                q[j] += hk[2 * j] * pk[2 * j] - hk[2 * j + 1] * pk[2 * j + 1]
+        gr, qr = g[i], qg[i]
+        for j in range(nf):
+            gj = _ONE / (_ONE + mu1 * q[j])
+            gr[j] = gj
+            qr[j] = q[j] * gj
+
+
+@_jit
+def volume_apply(r, p, inv, g, qg, xh, scale, mu1, e, mv, lo, hi):
+    """The volume solve from the factors of :func:`volume_factors`, in place in r.
+
+    With t = T⁻¹r (one Thomas sweep on the data) and s = pᴴr (= aᴴT⁻¹r, T symmetric):
+    ``(M v)^ = g·scale·s + qg·x̂`` and ``ṽ = scale·t + (x̂ − μ₁(M v)^)·p``."""
+    nz, _, nf2 = r.shape
+    nf = nf2 // 2
+    sr = np.empty(nf, np.float32)
+    si = np.empty(nf, np.float32)
+    cr = np.empty(nf, np.float32)
+    ci = np.empty(nf, np.float32)
+    for i in range(lo, hi):
+        sr[:] = _ZERO
+        si[:] = _ZERO
+        for k in range(nz):
+            rk, pk, ik = r[k, i], p[k, i], inv[k, i]
+            for j in range(nf):  # s += conj(p)·r, before r becomes t
+                sr[j] += pk[2 * j] * rk[2 * j] + pk[2 * j + 1] * rk[2 * j + 1]
+                si[j] += pk[2 * j] * rk[2 * j + 1] - pk[2 * j + 1] * rk[2 * j]
+            if k == 0:
+                for j in range(nf):
+                    rk[2 * j] *= ik[j]
+                    rk[2 * j + 1] *= ik[j]
+            else:
+                rp = r[k - 1, i]
+                for j in range(nf):
+                    rk[2 * j] = (rk[2 * j] + e * rp[2 * j]) * ik[j]
+                    rk[2 * j + 1] = (rk[2 * j + 1] + e * rp[2 * j + 1]) * ik[j]
+        for k in range(nz - 2, -1, -1):
+            rk, rn, ik = r[k, i], r[k + 1, i], inv[k, i]
+            for j in range(nf):
+                c = e * ik[j]
+                rk[2 * j] += c * rn[2 * j]
+                rk[2 * j + 1] += c * rn[2 * j + 1]
+        xr, gr, qr, mvr = xh[i], g[i], qg[i], mv[i]
+        for j in range(nf):
+            mre = scale * gr[j] * sr[j] + qr[j] * xr[2 * j]
+            mim = scale * gr[j] * si[j] + qr[j] * xr[2 * j + 1]
+            mvr[2 * j] = mre
+            mvr[2 * j + 1] = mim
+            cr[j] = xr[2 * j] - mu1 * mre
+            ci[j] = xr[2 * j + 1] - mu1 * mim
+        for k in range(nz):
+            rk, pk = r[k, i], p[k, i]
+            for j in range(nf):
+                pre, pim = pk[2 * j], pk[2 * j + 1]
+                rk[2 * j] = scale * rk[2 * j] + cr[j] * pre - ci[j] * pim
+                rk[2 * j + 1] = scale * rk[2 * j + 1] + cr[j] * pim + ci[j] * pre
+
+
+@_jit
+def volume_apply_diagonal(r, h, gain, xh, scale, mu1, mu3, mv, lo, hi):
+    """The volume solve without TV (T = μ₃I), in place in r: with q = Σ|h|²/μ₃
+    (`gain` = Σ|h|²), ``(M v)^ = (scale·Σ h·r/μ₃ + q·x̂) / (1 + μ₁q)`` and
+    ``ṽ = (scale·r + (x̂ − μ₁(M v)^)·conj(h)) / μ₃``."""
+    nz, _, nf2 = r.shape
+    nf = nf2 // 2
+    inv = _ONE / mu3
+    sr = np.empty(nf, np.float32)
+    si = np.empty(nf, np.float32)
+    for i in range(lo, hi):
+        sr[:] = _ZERO
+        si[:] = _ZERO
+        for k in range(nz):
+            rk, hk = r[k, i], h[k, i]
+            for j in range(nf):  # s += h·r = aᴴr
+                sr[j] += hk[2 * j] * rk[2 * j] - hk[2 * j + 1] * rk[2 * j + 1]
+                si[j] += hk[2 * j] * rk[2 * j + 1] + hk[2 * j + 1] * rk[2 * j]
+        xr, gn, mvr = xh[i], gain[i], mv[i]
+        for j in range(nf):
+            q = gn[j] * inv
+            gj = _ONE / (_ONE + mu1 * q)
+            mre = (scale * inv * sr[j] + q * xr[2 * j]) * gj
+            mim = (scale * inv * si[j] + q * xr[2 * j + 1]) * gj
+            mvr[2 * j] = mre
+            mvr[2 * j + 1] = mim
+            sr[j] = (xr[2 * j] - mu1 * mre) * inv  # now the coefficient of conj(h)
+            si[j] = (xr[2 * j + 1] - mu1 * mim) * inv
+        for k in range(nz):
+            rk, hk = r[k, i], h[k, i]
+            for j in range(nf):
+                hre, him = hk[2 * j], hk[2 * j + 1]
+                rk[2 * j] = scale * inv * rk[2 * j] + sr[j] * hre + si[j] * him
+                rk[2 * j + 1] = scale * inv * rk[2 * j + 1] + si[j] * hre - sr[j] * him

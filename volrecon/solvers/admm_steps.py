@@ -20,8 +20,6 @@ needed, see :func:`w_step`).
 
 from __future__ import annotations
 
-from concurrent.futures import ThreadPoolExecutor
-from itertools import pairwise
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -35,7 +33,14 @@ if TYPE_CHECKING:
     from volrecon._typing import Array
     from volrecon.backend import Backend
 
-__all__ = ["ArraySteps", "CompiledSteps", "steps_for"]
+__all__ = ["FACTOR_CACHE_BYTES", "ArraySteps", "CompiledSteps", "steps_for"]
+
+#: Bytes of volume-solve factor sets (with TV) a compiled steps object keeps, most recent
+#: first; the most recent set is always kept. A set holds 1.5× the bytes of Ĥ (pivots in
+#: float32, T⁻¹a in complex64): 6 MB at 16×128², 1.6 GB at Z = 64 on a 1024² sensor. So
+#: small problems keep one set per frame of a temporal window (each its own
+#: μ₃ + weight·λ_k), and large ones only the current set (a warm chain rarely changes it).
+FACTOR_CACHE_BYTES = 256 << 20
 
 
 def steps_for(backend: Backend, *, compiled: bool | None = None) -> ArraySteps:
@@ -93,12 +98,14 @@ class ArraySteps:
         return change
 
     def volume_solve(self, r: Array, h: Array, xh: Array, lateral: Array | None, scale: float,
-                     mu1: float, mu2: float, mu3: float, e: float) -> Array:
+                     mu1: float, mu2: float, mu3: float, e: float, *,
+                     gain: Array | None = None) -> Array:
         """Solve ``(μ₁ a aᴴ + T) ṽ = scale·r + a·xh`` per lateral frequency, in place in `r`.
 
         ``a = conj(h)`` with `h` the model's transfer functions Ĥ, ``T = (μ₂L(f) + μ₃) I + e·N``
         with N the Neumann depth Laplacian (tridiagonal, Thomas algorithm); Sherman–Morrison
-        handles the rank-one term. Returns ``(M v)^ = aᴴṽ``.
+        handles the rank-one term. Returns ``(M v)^ = aᴴṽ``. `gain` is ``Σ_z|Ĥ_z|²`` of `h`
+        where the caller has it (the compiled solve without TV uses it, else computes it).
         """
         xp = self.xp
         a = h.conj()
@@ -150,18 +157,14 @@ class CompiledSteps(ArraySteps):
 
     def __init__(self, backend: Backend) -> None:
         super().__init__(backend)
-        self.threads = backend.threads
+        # Volume-solve factors by (arrays, penalties): one solve's steps object owns them.
+        # key -> (arrays the key's ids stand for, kept alive so an id is never reused while
+        # its entry lasts; the factors)
+        self._cache: dict[tuple[Any, ...], tuple[tuple[Any, ...], tuple[Array, ...]]] = {}
 
     def _split(self, kernel: Callable[..., None], n: int, *args: Any) -> None:
-        chunks = min(self.threads, n)
-        if chunks <= 1:
-            kernel(*args, 0, n)
-            return
-        bounds = np.linspace(0, n, chunks + 1).astype(int)
-        futures = [_pool().submit(kernel, *args, int(lo), int(hi))
-                   for lo, hi in pairwise(bounds)]
-        for f in futures:
-            f.result()
+        # The backend's split: the calling thread runs the first range, pool threads the rest.
+        self.be.run_split(kernel, n, *args)
 
     def tv_dual_step(self, v: Array, ymb: Array, y_out: Array | None, kappa: float, rho: float,
                      tv_z_weight: float) -> None:
@@ -187,15 +190,57 @@ class CompiledSteps(ArraySteps):
         return float(change), float(norm)
 
     def volume_solve(self, r: Array, h: Array, xh: Array, lateral: Array | None, scale: float,
-                     mu1: float, mu2: float, mu3: float, e: float) -> Array:
+                     mu1: float, mu2: float, mu3: float, e: float, *,
+                     gain: Array | None = None) -> Array:
+        """As :meth:`ArraySteps.volume_solve`, in two parts: the factors that depend only on
+        `h`, `lateral` and the penalties (the Thomas pivots, ``p = T⁻¹a`` and
+        ``1/(1 + μ₁aᴴp)``), computed once per penalty set and kept while it lasts, and one
+        pass over the data per call (a Thomas sweep of `r` alone, ``aᴴT⁻¹r = pᴴr``).
+        Without TV (``T = μ₃I``) the factors are closed-form and nothing is kept but
+        ``Σ_z|Ĥ_z|²``."""
         k = _kernels()
         mv = np.empty(r.shape[1:], dtype=r.dtype)
-        lat = lateral if lateral is not None else np.zeros((1, 1), dtype=np.float32)
         f32 = np.float32
-        self._split(k.volume_solve, r.shape[1], _real_view(r), _real_view(h), _real_view(xh),
-                    lat, lateral is not None, f32(scale), f32(mu1), f32(mu2), f32(mu3), f32(e),
-                    _real_view(mv))
+        rv, xv, mvv = _real_view(r), _real_view(xh), _real_view(mv)
+        if lateral is None and e == 0:
+            if gain is None or gain.dtype != np.float32:
+                gain = self._factors(("gain", id(h)), (h,), lambda: _gain(h))[0]
+            self._split(k.volume_apply_diagonal, r.shape[1], rv, _real_view(h), gain, xv,
+                        f32(scale), f32(mu1), f32(mu3), mvv)
+            return mv
+        lat = lateral if lateral is not None else np.zeros((1, 1), dtype=np.float32)
+
+        def factors() -> tuple[Array, ...]:
+            inv = np.empty(h.shape, dtype=np.float32)
+            p = np.empty_like(h)
+            g = np.empty(h.shape[1:], dtype=np.float32)
+            qg = np.empty_like(g)
+            self._split(k.volume_factors, h.shape[1], _real_view(h), lat, lateral is not None,
+                        f32(mu1), f32(mu2), f32(mu3), f32(e), inv, _real_view(p), g, qg)
+            return inv, p, g, qg
+
+        key = ("tv", id(h), id(lateral), f32(mu1), f32(mu2), f32(mu3), f32(e))
+        inv, p, g, qg = self._factors(key, (h, lateral), factors)
+        self._split(k.volume_apply, r.shape[1], rv, _real_view(p), inv, g, qg, xv, f32(scale),
+                    f32(mu1), f32(e), mvv)
         return mv
+
+    def _factors(self, key: tuple[Any, ...], pins: tuple[Any, ...],
+                 make: Callable[[], tuple[Array, ...]]) -> tuple[Array, ...]:
+        """The cached `make()` for `key` (whose ids name the arrays in `pins`); keeps the most
+        recent sets within :data:`FACTOR_CACHE_BYTES`, and always the newest."""
+        entry = self._cache.pop(key, None)
+        if entry is None or any(a is not b for a, b in zip(entry[0], pins, strict=True)):
+            entry = (pins, make())
+        self._cache[key] = entry  # most recent last
+
+        def size(item: tuple[tuple[Any, ...], tuple[Array, ...]]) -> int:
+            return sum(int(a.nbytes) for a in item[1])
+
+        while len(self._cache) > 1 and sum(map(size, self._cache.values())) > \
+                FACTOR_CACHE_BYTES:
+            del self._cache[next(iter(self._cache))]
+        return entry[1]
 
     def gradient_minus(self, v: Array, p: Array, tv_z_weight: float) -> None:
         self._split(_kernels().gradient_minus, v.shape[0], v, p, np.float32(tv_z_weight))
@@ -213,6 +258,14 @@ class CompiledSteps(ArraySteps):
         return tuple(float(s) for s in partial.sum(axis=0))
 
 
+def _gain(h: Array) -> tuple[Array]:
+    """``Σ_z |Ĥ_z|²`` (Py, F) in float32, one plane at a time."""
+    gain = np.zeros(h.shape[1:], dtype=np.float32)
+    for plane in h:
+        gain += plane.real**2 + plane.imag**2
+    return (gain,)
+
+
 def _real_view(a: Array) -> Array:
     """A C-contiguous complex64 array as float32 with (re, im) pairs along the last axis."""
     if a.dtype != np.complex64 or not a.flags.c_contiguous:
@@ -222,18 +275,6 @@ def _real_view(a: Array) -> Array:
 
 _DUMMY3 = np.zeros((1, 1, 1), dtype=np.float32)
 _DUMMY4 = np.zeros((1, 1, 1, 1), dtype=np.float32)
-_POOL: list[ThreadPoolExecutor] = []
-
-
-def _pool() -> ThreadPoolExecutor:
-    if not _POOL:
-        from volrecon.backend import available_cores
-
-        _POOL.append(ThreadPoolExecutor(max_workers=available_cores(),
-                                        thread_name_prefix="volrecon-admm"))
-    return _POOL[0]
-
-
 def _kernels() -> Any:
     """The numba module, imported (and compiled, or loaded from its cache) on first use."""
     from volrecon.solvers import admm_kernels

@@ -186,15 +186,19 @@ def gradient_norm_max(v, wz, partial, lo, hi):
     """partial[z] = max over plane z of the grown grid of |∇v|."""
     nx = v.shape[2]
     rows = np.empty((6, nx + 1), np.float32)
+    lane = np.empty(nx + 1, np.float32)  # per-column maxima: an element-wise max vectorises
     for z in range(lo, hi):
-        peak = _ZERO
+        lane[:] = _ZERO
         for i in range(v.shape[1] + 1):
             _grown_gradient_rows(v, z, i, wz, rows[0], rows[1], rows[2], rows[3], rows[4],
                                  rows[5])
             for j in range(nx + 1):
                 n = np.sqrt(rows[3, j] * rows[3, j] + rows[4, j] * rows[4, j]
                             + rows[5, j] * rows[5, j])
-                peak = max(peak, n)
+                lane[j] = max(lane[j], n)
+        peak = _ZERO
+        for j in range(nx + 1):
+            peak = max(peak, lane[j])
         partial[z, 0] = peak
 
 
@@ -219,19 +223,21 @@ def rl_tv_update(v, c, sensitivity, l1, tv, floor, eps, wz, partial, lo, hi):
     scratch = np.empty((3, nx + 1), np.float32)
     here = np.empty((3, nx + 1), np.float32)
     up = np.empty((3, nx + 1), np.float32)
-    below = np.empty((3, nx + 1), np.float32)
+    # Depth components of the normalised gradient on plane z − 1, row by row: each row is
+    # normalised once (plane lo − 1 once more, by the thread that starts at lo).
+    below = np.zeros((ny, nx + 1), np.float32)
     div = np.empty(nx, np.float32)
+    if lo > 0:
+        for i in range(ny):
+            _normalised_rows(v, lo - 1, i, wz, eps, scratch, here)
+            below[i, :] = here[2]
     for z in range(lo, hi):
         acc = np.zeros(2)
         _normalised_rows(v, z, ny, wz, eps, scratch, up)  # the zero row above row 0 (periodic)
         for i in range(ny):
             _normalised_rows(v, z, i, wz, eps, scratch, here)
-            if z > 0:
-                _normalised_rows(v, z - 1, i, wz, eps, scratch, below)
-            else:
-                below[2, :] = _ZERO
             vr, cr, sr = v[z, i], c[z, i], sensitivity[z, i]
-            h0, h1, h2, u0, b2 = here[0], here[1], here[2], up[0], below[2]
+            h0, h1, h2, u0, b2 = here[0], here[1], here[2], up[0], below[i]
             # ∇ᵀp = p_y[i−1] − p_y[i] + p_x[j−1] − p_x[j] + w_z (p_z[z−1] − p_z[z])
             div[0] = h1[nx]
             for j in range(1, nx):
@@ -247,6 +253,7 @@ def rl_tv_update(v, c, sensitivity, l1, tv, floor, eps, wz, partial, lo, hi):
                 s0 += d * d
                 s1 += u * u
             up[0, :] = h0
+            b2[:] = h2  # plane z's row for plane z + 1
             acc[0] += s0
             acc[1] += s1
         partial[z, :] = acc

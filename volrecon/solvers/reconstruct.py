@@ -280,7 +280,7 @@ def _checked(model: PSFModel, method: str, iterations: int | str, *, tv: float, 
     if device is not None or threads is not None:
         model = model.on_device(device or model.backend.device,
                                 threads=threads or model.backend.threads)
-    if method == "admm" and model.transfer_functions() is None:
+    if method == "admm" and not model.shift_invariant:
         raise ConfigError(
             f"method 'admm' needs a shift-invariant model; {type(model).__name__} is not one — "
             "use method='fista' or 'rl'"

@@ -167,3 +167,39 @@ def test_fista_recovers_beads_and_admm_is_refused(rng):
     assert rl.shape == model.shape_in and np.isfinite(rl).all()
     with pytest.raises(ConfigError, match="'fista' or 'rl'"):
         volrecon.reconstruct(frame, model, method="admm")
+
+
+def test_model_store_opens_as_sub_position_responses(rng, tmp_path):
+    from volrecon.napari.stores import model_store_layers, store_kind
+
+    model = LensletPSF(rng.random((2, 3, 3, 9, 9)), GEOMETRY)
+    model.save(tmp_path / "lf.zarr")
+    assert store_kind(tmp_path / "lf.zarr") == "model"
+    (data, kwargs, layer_type), = model_store_layers(tmp_path / "lf.zarr")
+    # Reference: the stack the model was built from, sub-position axes first for sliders.
+    np.testing.assert_array_equal(data.compute(), np.moveaxis(model.psf, 0, 2))
+    assert layer_type == "image"
+    assert kwargs["axis_labels"] == ["sub-position y", "sub-position x", "z", "y", "x"]
+    assert kwargs["scale"] == [1.0, 1.0, 2.0, 0.5, 0.5]
+    assert kwargs["translate"] == [0.0, 0.0, -1.0, 0.0, 0.0]
+
+
+def test_a_job_with_admm_on_a_lenslet_model_is_refused_before_any_write(rng, tmp_path,
+                                                                          capsys):
+    import tifffile
+    import tomli_w
+
+    from volrecon.cli import main
+
+    model = PSFModel.from_stack(_spot_stack(rng), 2.0, 0.5, lenslet_pitch=3)
+    model.save(tmp_path / "model")
+    frames = np.stack([model.forward(rng.random(model.shape_in).astype(np.float32))] * 2)
+    tifffile.imwrite(tmp_path / "raw.tif", frames.astype(np.float32), photometric="minisblack")
+    (tmp_path / "job.toml").write_text(tomli_w.dumps({
+        "model": {"path": "model"}, "video": {"path": "raw.tif"},
+        "solver": {"method": "admm", "iterations": 5},
+        "output": {"path": "out.zarr", "time_interval_s": 0.1}}))
+    assert main(["run", str(tmp_path / "job.toml"), "--no-progress"]) == 2
+    (line,) = capsys.readouterr().err.strip().splitlines()
+    assert "solver.method" in line and "lenslet" in line and '"fista"' in line
+    assert not (tmp_path / "out.zarr").exists()

@@ -181,6 +181,11 @@ class PSFModel(ABC):
         return (scipy.fft.next_fast_len(2 * ny - 1, real=True),
                 scipy.fft.next_fast_len(2 * nx - 1, real=True))
 
+    @property
+    def shift_invariant(self) -> bool:
+        """True when the model has :meth:`transfer_functions` (without building them)."""
+        return type(self).transfer_functions is not PSFModel.transfer_functions
+
     def transfer_functions(self) -> Array | None:
         """Per-plane spectra ``Ĥ`` (Z, Py, Px//2+1) on the padded grid, or None.
 

@@ -12,6 +12,7 @@
 
 from volrecon.simulate.camera import Camera
 from volrecon.simulate.design import KINDS, MicroscopeDesign
+from volrecon.simulate.lenslet import LensletDesign, lenslet_point_images, lenslet_psf_stack
 from volrecon.simulate.masks import (
     PhaseMask,
     circular_aperture,
@@ -32,7 +33,12 @@ from volrecon.simulate.recording import (
     record_video,
     write_tiff,
 )
-from volrecon.simulate.scenario import Scenario, read_scenario, write_hydrogel_scenario
+from volrecon.simulate.scenario import (
+    Scenario,
+    read_scenario,
+    write_hydrogel_scenario,
+    write_lenslet_scenario,
+)
 from volrecon.simulate.scenes import (
     Scene,
     bead_scene,
@@ -46,6 +52,7 @@ from volrecon.simulate.sources import collection_efficiency, pupil_field, spheri
 __all__ = [
     "KINDS",
     "Camera",
+    "LensletDesign",
     "MicroscopeDesign",
     "PSFStack",
     "PhaseMask",
@@ -62,6 +69,8 @@ __all__ = [
     "filament_scene",
     "grid_coordinates",
     "lensless_psf_stack",
+    "lenslet_point_images",
+    "lenslet_psf_stack",
     "microlens_array_mask",
     "propagate",
     "pupil_field",
@@ -75,5 +84,6 @@ __all__ = [
     "spherical_wave",
     "thin_lens_mask",
     "write_hydrogel_scenario",
+    "write_lenslet_scenario",
     "write_tiff",
 ]

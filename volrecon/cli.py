@@ -218,17 +218,44 @@ def _run_verify(args: argparse.Namespace) -> int:
 
 
 def _add_export(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
-    p = sub.add_parser("export", help="write store volumes as an ImageJ hyperstack TIFF")
+    p = sub.add_parser("export", help="write store volumes as an ImageJ hyperstack TIFF, a "
+                       "movie (.mp4/.gif) or region traces (CSV)")
     p.add_argument("store", metavar="OUT", help="the job's output store")
-    p.add_argument("--tiff", required=True, metavar="F.tif", help="TIFF file to write")
+    what = p.add_mutually_exclusive_group(required=True)
+    what.add_argument("--tiff", metavar="F.tif", help="TIFF file to write")
+    what.add_argument("--movie", metavar="F.mp4", help="movie to write (.mp4 H.264 or .gif) "
+                      "with a scale bar and the time; finished frames only")
+    what.add_argument("--traces", metavar="REGIONS.csv", help="regions CSV (as the napari "
+                      "time-traces widget saves it): write their mean per frame to --out")
+    p.add_argument("--out", metavar="F.csv", help="traces CSV to write (with --traces)")
     p.add_argument("--frames", metavar="a:b", default=None,
                    help="store frames a to b-1 (default all)")
-    p.add_argument("--projection", choices=("max",), default=None,
-                   help="export the maximum projection along z instead of the volumes")
+    p.add_argument("--projection", default=None, metavar="max|z=K",
+                   help="TIFF: 'max' exports the maximum along z instead of the volumes; "
+                   "movie: 'max' (default) or plane 'z=K'")
+    p.add_argument("--fps", type=float, default=10.0, metavar="N",
+                   help="movie frames per second (default 10)")
     p.set_defaults(run=_run_export)
 
 
 def _run_export(args: argparse.Namespace) -> int:
+    from volrecon.errors import ConfigError
+
+    if (args.out is not None) != (args.traces is not None):
+        raise ConfigError("--traces REGIONS.csv and --out TRACES.csv go together; give both")
+    if args.traces is not None:
+        from volrecon.pipeline.export import export_traces
+
+        print(export_traces(args.store, args.traces, args.out, frames=args.frames))
+        return 0
+    if args.movie is not None:
+        from volrecon.pipeline.movie import export_movie
+
+        result = export_movie(args.store, args.movie, projection=args.projection,
+                              fps=args.fps, frames=args.frames)
+        print(f"{result.path}: {len(result.frames)} frames at {result.fps:g} fps, scale bar "
+              f"{result.scale_bar_um:g} µm; {result.skipped} frames not done skipped")
+        return 0
     from volrecon.pipeline import export_tiff
 
     out = export_tiff(args.store, args.tiff, frames=args.frames, projection=args.projection)
@@ -280,6 +307,9 @@ def _add_demo(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg
         "the result against the truth.")
     p.add_argument("outdir", metavar="OUTDIR", help="directory for the demo's files")
     p.add_argument("--frames", type=int, default=40, help="video frames (default 40)")
+    p.add_argument("--optics", choices=("diffuser", "lenslet"), default="diffuser",
+                   help="simulated instrument: a diffuser in the pupil (default), or a "
+                        "microlens array at the image plane (light field)")
     p.add_argument("--no-progress", action="store_true", help="do not draw the progress bar")
     p.set_defaults(run=_run_demo)
 
@@ -289,7 +319,8 @@ def _run_demo(args: argparse.Namespace) -> int:
     from volrecon.pipeline import progress_bar
 
     with progress_bar(disable=True if args.no_progress else None) as progress:
-        result = run_demo(args.outdir, n_frames=args.frames, progress=progress)
+        result = run_demo(args.outdir, n_frames=args.frames, optics=args.optics,
+                          progress=progress)
     print(result.summary())
     return 0
 

@@ -108,7 +108,9 @@ def test_demo_sample_runs_the_demo_once_and_opens_its_store(tmp_path, monkeypatc
     names = [kwargs["name"] for _, kwargs, _ in layers]
     assert names[0] == "volumes" and "demo raw video" in names and "demo truth" in names
     assert any(n.startswith("demo psf-model") for n in names)
-    volumes, kwargs, _ = layers[0]
+    levels, kwargs, _ = layers[0]
+    assert kwargs["multiscale"] and len(levels) == 2  # 128 px: levels "auto" makes two
+    volumes = levels[0]
     assert isinstance(volumes, da.Array) and volumes.shape[0] == 2 and volumes.ndim == 4
     assert kwargs["metadata"]["volrecon_store"].startswith(str(tmp_path / "cache"))
     truth = layers[names.index("demo truth")][0]

@@ -82,9 +82,9 @@ def test_interrupted_creation_is_recognised_and_counted(tmp_path):
 
 def test_store_of_another_format_is_refused(tmp_path):
     path = _store(tmp_path / "out.zarr")
-    _edit_attribute(path, format_version=3)
-    with pytest.raises(InputFileError, match=r"output store format 3 is not one this volrecon "
-                                             r"reads \(1, 2\)"):
+    _edit_attribute(path, format_version=4)
+    with pytest.raises(InputFileError, match=r"output store format 4 is not one this volrecon "
+                                             r"reads \(1, 2, 3\)"):
         JobStore.open(path)
 
 

@@ -25,10 +25,11 @@ DAMAGED_FRAME = 4
 
 @pytest.fixture(scope="module")
 def finished_once(tmp_path_factory):
-    """The tiny job with projections, run to the end once for this module."""
+    """The tiny job with projections, run to the end once for this module, one file per chunk
+    (``shard_frames = 1``: each byte flip hits one frame; sharded stores: test_shards.py)."""
     folder = tmp_path_factory.mktemp("verify")
     files = make_job_files(folder, np.random.default_rng(20261203))
-    run_job(load_job(files.write_job(output={"max_projections": True})))
+    run_job(load_job(files.write_job(output={"max_projections": True, "shard_frames": 1})))
     return folder
 
 
@@ -63,7 +64,8 @@ def test_every_array_carries_a_checksum_and_a_flipped_byte_fails_loudly(finished
         codecs = [codec["name"] for codec in
                   json.loads((store / key / "zarr.json").read_text())["codecs"]]
         assert codecs == ["bytes", "zstd", "crc32c"], key
-    assert group.attrs["volrecon"]["format_version"] == 2
+    assert group.attrs["volrecon"]["format_version"] == 3
+    assert group.attrs["volrecon"]["shard_frames"] == 1  # this module's layout
     _flip_byte(_chunk_file(store, "0", DAMAGED_FRAME))
     # zarr's crc32c codec compares the stored and the computed checksum while decoding.
     with pytest.raises(ValueError, match="checksum do not match"):
@@ -176,7 +178,8 @@ def _status_lines(store: Path) -> str:
     return "\n".join(format_status(store_status(store)))
 
 
-def test_frames_are_flushed_to_disk_before_their_record(job_files, monkeypatch):
+@pytest.mark.parametrize("shard_frames", [1, 3])
+def test_frames_are_flushed_to_disk_before_their_record(job_files, monkeypatch, shard_frames):
     # Durability order (store.py): a task's volume and projection chunks and their folders
     # are fsynced before its diagnostics, and those before the status chunk that marks its
     # frames done. Recorded through the one fsync helper the store uses.
@@ -196,17 +199,21 @@ def test_frames_are_flushed_to_disk_before_their_record(job_files, monkeypatch):
         synced.append(path)
 
     monkeypatch.setattr(store_module, "_fsync", recording)
-    run_job(load_job(job_files.write_job(output={"max_projections": True})))
+    run_job(load_job(job_files.write_job(output={"max_projections": True,
+                                                 "shard_frames": shard_frames})))
     assert len(done_at) == N_FRAMES // 3  # one record per task of 3 frames
+    opened = JobStore.open(store, mode="r")
     residual = store / "diagnostics" / "residual" / "c" / "0"
     before: set[int] = set()
     previous = -1
     for mark, done in sorted(done_at.items()):
         assert residual in synced[previous + 1:mark]  # this record's diagnostics, first
         for t in done - before:
-            for array in ("0", "projections/max_x"):
-                chunk = _chunk_file(store, array, t)
-                assert synced.index(chunk) < mark, (t, array)
-                assert synced.index(store / array / "c" / str(t)) < mark  # its new folder
+            for chunk in opened.frame_chunk_paths(t):  # its chunk files, or its shard files
+                assert synced.index(chunk) < mark, (t, chunk)
+                folder = chunk.parent
+                while folder.name != "c":  # and its new folders
+                    assert synced.index(folder) < mark, (t, folder)
+                    folder = folder.parent
         before, previous = done, mark
     assert before == set(range(N_FRAMES))

@@ -24,6 +24,8 @@ sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "pipeline"))
 
 from jobdata import JobFiles
 
+from volrecon.pipeline.store import JobStore
+
 Setup = Callable[[JobFiles], list[str]]
 
 
@@ -468,11 +470,11 @@ def _(files: JobFiles) -> list[str]:
 
 
 @case("output_newer_format", "output store from a newer volrecon format", "run",
-      "output store format 3", "use a matching volrecon")
+      "output store format 4", "use a matching volrecon")
 def _(files: JobFiles) -> list[str]:
     meta_file = files.folder / "out.zarr" / "zarr.json"
     meta = json.loads(meta_file.read_text())
-    meta["attributes"]["volrecon"]["format_version"] = 3
+    meta["attributes"]["volrecon"]["format_version"] = 4
     meta_file.write_text(json.dumps(meta))
     return _run(files, "job.toml")
 
@@ -497,7 +499,7 @@ def _(files: JobFiles) -> list[str]:
       "frame 3", "cannot be read", "export other frames with --frames")
 def _(files: JobFiles) -> list[str]:
     store = files.folder / "out.zarr"
-    (chunk,) = (p for p in (store / "0" / "c" / "3").rglob("*") if p.is_file())
+    chunk = JobStore.open(store, mode="r").frame_chunk_paths(3)[0]  # frame 3's shard file
     chunk.write_bytes(chunk.read_bytes()[:40])
     (files.folder / "volumes.tif").write_bytes(b"last week's export")
     return ["export", str(store), "--tiff", str(files.folder / "volumes.tif")]
@@ -538,11 +540,11 @@ def _(files: JobFiles) -> list[str]:
 
 
 @case("verify_other_format", "`verify` of an output store of another format", "verify",
-      "output store format 3", "use a matching volrecon")
+      "output store format 4", "use a matching volrecon")
 def _(files: JobFiles) -> list[str]:
     meta_file = files.folder / "out.zarr" / "zarr.json"
     meta = json.loads(meta_file.read_text())
-    meta["attributes"]["volrecon"]["format_version"] = 3
+    meta["attributes"]["volrecon"]["format_version"] = 4
     meta_file.write_text(json.dumps(meta))
     return ["verify", str(files.folder / "out.zarr"), "--no-progress"]
 

@@ -5,7 +5,6 @@ from __future__ import annotations
 
 import errno
 import os
-import shutil
 import subprocess
 from pathlib import Path
 
@@ -25,7 +24,7 @@ from reliability_tools import (
 from volrecon.cli import main
 from volrecon.pipeline import StoreLock, load_job, run_job, store_status
 from volrecon.pipeline.lock import lock_path_for
-from volrecon.pipeline.store import STATUS_DONE, STATUS_PENDING
+from volrecon.pipeline.store import STATUS_DONE, STATUS_PENDING, JobStore
 
 RUNNABLE = [c for c in CASES if c.setup is not None and not c.warns]
 WARNING_CASES = [c for c in CASES if c.warns]
@@ -108,15 +107,18 @@ def _half_done(files) -> Path:
     values = status[:]
     values[6:] = STATUS_PENDING
     status[:] = values
-    for t in range(6, N_FRAMES):
-        shutil.rmtree(store / "0" / "c" / str(t))
+    opened = JobStore.open(store, mode="r")
+    for t in range(6, N_FRAMES):  # their shard files (chains and shards of 3 frames)
+        for path in opened.frame_chunk_paths(t):
+            path.unlink(missing_ok=True)
     return store
 
 
 def _finished_frame_files(store: Path) -> dict[str, str]:
-    snapshot = tree_snapshot(store)
-    return {k: v for k, v in snapshot.items()
-            if k.startswith("0/c/") and int(k.split("/")[2]) < 6}
+    opened = JobStore.open(store, mode="r")
+    files = {path.relative_to(store).as_posix() for t in range(6)
+             for path in opened.frame_chunk_paths(t)}
+    return {k: v for k, v in tree_snapshot(store).items() if k in files}
 
 
 def test_disk_full_mid_write_keeps_finished_frames(job_copy, capsys, monkeypatch):
@@ -125,8 +127,9 @@ def test_disk_full_mid_write_keeps_finished_frames(job_copy, capsys, monkeypatch
     finished = _finished_frame_files(store)
     job = job_copy.write_job("full.toml", compute={"scheduler": "synchronous",
                                                    "frames_per_task": 3})
-    # A real zarr LocalStore whose disk fills after 2 more chunk writes (frames 6 and 7):
-    # the third chunk write of this run raises ENOSPC, as write() on a full disk does.
+    # A real zarr LocalStore whose disk fills after 2 more writes (the shard file of frames
+    # 6 to 8, then a diagnostics chunk): the third write of this run raises ENOSPC, as
+    # write() on a full disk does.
     monkeypatch.setattr(zarr.storage, "LocalStore", FullDiskStore)
     monkeypatch.setattr(FullDiskStore, "budget", 2)
     monkeypatch.setattr(FullDiskStore, "written", 0)
@@ -161,7 +164,9 @@ def small_tmpfs(tmp_path):
 
 def test_disk_full_on_a_small_tmpfs(job_copy, small_tmpfs):
     store = small_tmpfs / "out.zarr"
-    job = job_copy.write_job("tmpfs.toml", output={"path": str(store)})
+    # One file per chunk: many small files, so the disk fills mid-job (a sharded store of
+    # this tiny job fits in 100 KiB).
+    job = job_copy.write_job("tmpfs.toml", output={"path": str(store), "shard_frames": 1})
     before = tree_snapshot(job_copy.folder)
     done = run_cli(["run", str(job), "--no-progress"])
     assert done.returncode == 2, done.stderr
@@ -190,7 +195,7 @@ def test_newer_store_is_never_wiped(job_copy):
     (case,) = (c for c in CASES if c.name == "output_newer_format")
     case.setup(job_copy)
     before = tree_snapshot(job_copy.folder / "out.zarr")
-    with pytest.raises(OSError, match="output store format 3"):
+    with pytest.raises(OSError, match="output store format 4"):
         run_job(load_job(job_copy.folder / "job.toml"))
     assert tree_snapshot(job_copy.folder / "out.zarr") == before
 

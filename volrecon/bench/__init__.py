@@ -5,7 +5,9 @@ shared machines are noisy: per-iteration time against the FFT lower bound
 (:mod:`volrecon.bench.iteration`) and, with ``--general``, time to a 1 % objective gap against
 PyLops + PyProximal (:mod:`volrecon.bench.general`). ``--pipeline`` times a whole job on a
 simulated video instead (:mod:`volrecon.bench.pipeline`); ``--temporal`` measures the
-temporal prior's gain and cost (:mod:`volrecon.bench.temporal`).
+temporal prior's gain and cost (:mod:`volrecon.bench.temporal`); ``--store`` the files and
+reading speed of a long sharded store (:mod:`volrecon.bench.store`); ``--lenslet`` the cost of
+the light-field model (:mod:`volrecon.bench.lenslet`).
 """
 
 from __future__ import annotations
@@ -42,13 +44,21 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="instead: marginal wall seconds per frame of a whole job "
                              "(volrecon run, 2 workers) on a simulated video, with quality "
                              "and projected hours (minutes; first --size only)")
-    parser.add_argument("--frames", type=int, default=240, metavar="N",
-                        help="--pipeline: frames of the simulated video (default 240)")
+    parser.add_argument("--frames", type=int, default=None, metavar="N",
+                        help="--pipeline: frames of the simulated video (default 240); "
+                             "--store: frames of the store (default 1000)")
     parser.add_argument("--scheduler", choices=("threads", "processes"), action="append",
                         help="--pipeline: dask scheduler (repeatable); default both")
     parser.add_argument("--temporal", action="store_true",
                         help="the temporal prior on a dim drifting video and across a cut, "
                              "against per-frame solves (a few minutes)")
+    parser.add_argument("--lenslet", action="store_true",
+                        help="instead: cost of the lenslet-array (light-field) model against "
+                             "its lattice FFTs and the FFT bound, FISTA and RL per iteration")
+    parser.add_argument("--store", action="store_true",
+                        help="instead: files, size, napari opening time and bytes per time "
+                             "step of a 1000-frame store, sharded and one file per chunk "
+                             "(--frames sets the count; about a minute)")
     parser.add_argument("--all", action="store_true",
                         help="every figure: the sizes of the README table and all of the above")
     parser.add_argument("--json", action="store_true", help="print the figures as JSON")
@@ -73,6 +83,26 @@ def run(args: argparse.Namespace) -> int:
         [(int(z), int(y), int(x)) for z, y, x in args.size] if args.size else default)
     if args.pipeline:
         return _run_pipeline(args, sizes[0])
+    if args.lenslet:
+        from volrecon.bench import lenslet
+
+        records = lenslet.run(threads=args.threads)
+        if args.json:
+            json.dump({"lenslet": records}, sys.stdout, indent=1)
+            sys.stdout.write("\n")
+        else:
+            print("\n".join(lenslet.report_lines(records)))
+        return 0
+    if args.store:
+        from volrecon.bench import store
+
+        result = store.run(n_frames=args.frames or 1000, size_zyx=sizes[0])
+        if args.json:
+            json.dump({"store": result}, sys.stdout, indent=1)
+            sys.stdout.write("\n")
+        else:
+            print("\n".join(store.report_lines(result)))
+        return 0
     if args.temporal:
         from volrecon.bench import temporal
 
@@ -155,7 +185,7 @@ def _run_pipeline(args: argparse.Namespace, size_zyx: tuple[int, int, int]) -> i
 
     if args.device != "cpu":
         raise ConfigError("--pipeline runs on the CPU; leave out --device")
-    report = pipeline.run(n_frames=args.frames, size_zyx=size_zyx, threads=args.threads,
+    report = pipeline.run(n_frames=args.frames or 240, size_zyx=size_zyx, threads=args.threads,
                           schedulers=args.scheduler or ("threads", "processes"))
     if args.json:
         json.dump({"pipeline": report}, sys.stdout, indent=1)

@@ -31,8 +31,12 @@ __all__ = [
     "OmeLevel",
     "chunk_codecs",
     "create_ome_image",
+    "downsample_yx",
+    "level_shape",
     "ome_image_attributes",
     "parse_ome_image",
+    "pyramid_levels",
+    "shard_shape",
     "volume_chunks",
 ]
 
@@ -42,13 +46,22 @@ IMAGE_PATH = "0"
 AXES_TZYX = ("t", "z", "y", "x")
 #: Largest chunk written by default (bytes); larger volumes are split along z.
 MAX_CHUNK_BYTES = 16 << 20
+#: A pyramid ends at the first level whose longer side is at most this (pixels).
+SMALLEST_LEVEL_PX = 64
+#: Element types a store's frame arrays may take.
+FRAME_DTYPES = ("float32", "float16")
 
 
 def ome_image_attributes(*, scale_tzyx: tuple[float, float, float, float], name: str,
                          translation_tzyx: tuple[float, float, float, float] | None = None,
-                         time_unit: str = "second", space_unit: str = "micrometer"
-                         ) -> dict[str, Any]:
-    """The ``ome`` group attribute of a one-level 4-D image.
+                         time_unit: str = "second", space_unit: str = "micrometer",
+                         levels: int = 1) -> dict[str, Any]:
+    """The ``ome`` group attribute of a 4-D image of `levels` resolution levels.
+
+    Level ``k`` (array ``"k"``) is the ``2^k × 2^k`` lateral mean of level 0
+    (:func:`downsample_yx`): its y and x scale are ``2^k`` times level 0's, and its voxel
+    ``(i, j)`` sits at the centre of the block it averages, ``(2^k − 1) / 2`` level-0 pixels
+    further along y and x.
 
     Parameters
     ----------
@@ -70,14 +83,22 @@ def ome_image_attributes(*, scale_tzyx: tuple[float, float, float, float], name:
     scale = [float(s) for s in scale_tzyx]
     if len(scale) != 4 or not all(math.isfinite(s) and s > 0 for s in scale):
         raise ConfigError(f"scale_tzyx must be 4 positive numbers; got {scale_tzyx!r}")
-    transforms: list[dict[str, Any]] = [{"type": "scale", "scale": scale}]
-    if translation_tzyx is not None and any(float(v) != 0 for v in translation_tzyx):
-        translation = [float(v) for v in translation_tzyx]
-        if len(translation) != 4 or not all(math.isfinite(v) for v in translation):
-            raise ConfigError(
-                f"translation_tzyx must be 4 finite numbers; got {translation_tzyx!r}"
-            )
-        transforms.append({"type": "translation", "translation": translation})
+    translation = [float(v) for v in (translation_tzyx or (0.0,) * 4)]
+    if len(translation) != 4 or not all(math.isfinite(v) for v in translation):
+        raise ConfigError(f"translation_tzyx must be 4 finite numbers; got {translation_tzyx!r}")
+    if levels < 1:
+        raise ConfigError(f"levels must be at least 1; got {levels}")
+    datasets = []
+    for level in range(levels):
+        factor = 2.0**level
+        level_scale = [*scale[:2], scale[2] * factor, scale[3] * factor]
+        shift = (factor - 1.0) / 2.0
+        level_translation = [*translation[:2], translation[2] + shift * scale[2],
+                             translation[3] + shift * scale[3]]
+        transforms: list[dict[str, Any]] = [{"type": "scale", "scale": level_scale}]
+        if any(v != 0 for v in level_translation):
+            transforms.append({"type": "translation", "translation": level_translation})
+        datasets.append({"path": str(level), "coordinateTransformations": transforms})
     axes = [{"name": "t", "type": "time", "unit": time_unit}]
     axes += [{"name": n, "type": "space", "unit": space_unit} for n in AXES_TZYX[1:]]
     return {
@@ -85,9 +106,54 @@ def ome_image_attributes(*, scale_tzyx: tuple[float, float, float, float], name:
         "multiscales": [{
             "name": name,
             "axes": axes,
-            "datasets": [{"path": IMAGE_PATH, "coordinateTransformations": transforms}],
+            "datasets": datasets,
         }],
     }
+
+
+def pyramid_levels(shape_yx: tuple[int, int], *, smallest: int = SMALLEST_LEVEL_PX) -> int:
+    """Levels of a pyramid halving y and x until the longer side is at most `smallest`.
+
+    Examples
+    --------
+    >>> pyramid_levels((128, 128)), pyramid_levels((512, 384)), pyramid_levels((64, 40))
+    (2, 4, 1)
+    """
+    levels, longest = 1, max(shape_yx)
+    while longest > smallest:
+        longest = -(-longest // 2)
+        levels += 1
+    return levels
+
+
+def level_shape(shape: tuple[int, ...], level: int) -> tuple[int, ...]:
+    """Shape of pyramid level `level` of an array of `shape` (last two axes y, x, halved
+    `level` times, rounding up)."""
+    factor = 2**level
+    return (*shape[:-2], *(-(-n // factor) for n in shape[-2:]))
+
+
+def downsample_yx(array: np.ndarray) -> np.ndarray:
+    """The 2 × 2 mean over the last two axes (y, x), float32.
+
+    An odd last row or column is averaged over the pixels it has (a 2 × 1, 1 × 2 or 1 × 1
+    block), so every output pixel is the mean of the level-above pixels it covers.
+
+    Examples
+    --------
+    >>> downsample_yx(np.arange(12, dtype=np.float32).reshape(3, 4)).tolist()
+    [[2.5, 4.5], [8.5, 10.5]]
+    """
+    *lead, ny, nx = array.shape
+    my, mx = -(-ny // 2), -(-nx // 2)
+    padded = np.zeros((*lead, 2 * my, 2 * mx), np.float64)
+    padded[..., :ny, :nx] = array
+    sums = padded.reshape(*lead, my, 2, mx, 2).sum(axis=(-3, -1))
+    counts = np.zeros((2 * my, 2 * mx))
+    counts[:ny, :nx] = 1.0
+    weights = counts.reshape(my, 2, mx, 2).sum(axis=(1, 3))
+    mean: np.ndarray = (sums / weights).astype(np.float32)
+    return mean
 
 
 def chunk_codecs(compression_level: int = 3) -> list[Any]:
@@ -122,13 +188,34 @@ def volume_chunks(shape_zyx: tuple[int, int, int], *, itemsize: int = 4,
     return (1, planes, ny, nx)
 
 
+def shard_shape(chunks: tuple[int, ...], shape: tuple[int, ...], *, shard_frames: int
+                ) -> tuple[int, ...] | None:
+    """Shard shape of a frame array: `shard_frames` frames of whole inner `chunks`.
+
+    None when `shard_frames` is 1 (one file per chunk, no sharding). Along every other axis
+    the shard spans the whole array, rounded up to whole chunks.
+
+    Examples
+    --------
+    >>> shard_shape((1, 2, 8, 8), (100, 3, 8, 8), shard_frames=32)
+    (32, 4, 8, 8)
+    """
+    if shard_frames < 1:
+        raise ConfigError(f"shard_frames must be at least 1; got {shard_frames}")
+    if shard_frames == 1:
+        return None
+    return (shard_frames, *(math.ceil(n / c) * c for n, c in
+                            zip(shape[1:], chunks[1:], strict=True)))
+
+
 def create_ome_image(path: str | os.PathLike[str], *, shape_tzyx: tuple[int, int, int, int],
                      scale_tzyx: tuple[float, float, float, float], name: str = "volumes",
                      translation_tzyx: tuple[float, float, float, float] | None = None,
                      chunks_tzyx: tuple[int, int, int, int] | None = None,
                      compression_level: int = 3, attributes: dict[str, Any] | None = None,
+                     shard_frames: int = 1, levels: int = 1, dtype: str = "float32"
                      ) -> zarr.Group:
-    """Create an empty float32 OME-Zarr 0.5 image group at `path` (which must not exist).
+    """Create an empty OME-Zarr 0.5 image group at `path` (which must not exist).
 
     Parameters
     ----------
@@ -148,11 +235,21 @@ def create_ome_image(path: str | os.PathLike[str], *, shape_tzyx: tuple[int, int
         zstd level, 1 to 22 (chunks also carry a CRC32C checksum, see :func:`chunk_codecs`).
     attributes : dict, optional
         Extra JSON group attributes (beside ``ome``), written with it.
+    shard_frames : int
+        Frames per file: above 1 the image is a zarr v3 sharded array whose shards hold
+        `shard_frames` frames of inner chunks `chunks_tzyx` (:func:`shard_shape`); 1 writes
+        one file per chunk.
+    levels : int
+        Resolution levels: arrays ``"0"`` to ``"levels - 1"``, each half the one above along
+        y and x (:func:`level_shape`; the caller writes :func:`downsample_yx` of each frame).
+    dtype : {"float32", "float16"}
+        Element type of every level.
 
     Returns
     -------
     zarr.Group
-        The open group; the image is ``group["0"]``, filled with NaN until written.
+        The open group; the image is ``group["0"]`` (levels ``group["1"]`` …), filled with NaN
+        until written.
 
     Notes
     -----
@@ -161,18 +258,25 @@ def create_ome_image(path: str | os.PathLike[str], *, shape_tzyx: tuple[int, int
     """
     import zarr
 
+    if dtype not in FRAME_DTYPES:
+        raise ConfigError(f"dtype must be one of {', '.join(FRAME_DTYPES)}; got {dtype!r}")
     codecs = chunk_codecs(compression_level)
     shape = tuple(int(n) for n in shape_tzyx)
-    chunks = chunks_tzyx or volume_chunks(shape[1:])  # type: ignore[arg-type]
-    ome = ome_image_attributes(scale_tzyx=scale_tzyx, name=name,
+    ome = ome_image_attributes(scale_tzyx=scale_tzyx, name=name, levels=levels,
                                translation_tzyx=translation_tzyx)  # checked before any write
     # The caller's attributes go into the group's first write, so a store interrupted at any
     # later moment is recognisable by them; "ome" follows once the image array exists.
     group = zarr.open_group(zarr.storage.LocalStore(os.fspath(path)), mode="w-", zarr_format=3,
                             attributes=dict(attributes or {}))
-    group.create_array(IMAGE_PATH, shape=shape, chunks=chunks, dtype="float32",
-                       compressors=codecs, fill_value=np.nan,
-                       dimension_names=list(AXES_TZYX))
+    itemsize = np.dtype(dtype).itemsize
+    for level in range(levels):
+        shape_k = level_shape(shape, level)
+        chunks = ((chunks_tzyx if level == 0 else None)
+                  or volume_chunks(shape_k[1:], itemsize=itemsize))  # type: ignore[arg-type]
+        group.create_array(str(level), shape=shape_k, chunks=chunks, dtype=dtype,
+                           shards=shard_shape(chunks, shape_k, shard_frames=shard_frames),
+                           compressors=codecs, fill_value=np.nan,
+                           dimension_names=list(AXES_TZYX))
     group.attrs.update({**(attributes or {}), "ome": ome})
     return group
 

@@ -6,7 +6,7 @@ Two kinds of store open in the viewer:
   with the physical scale, translation, units and axis names of its OME-NGFF 0.5 metadata,
   plus its maximum projections (when the job wrote them) as extra, hidden layers;
 - a **PSF model store**: the PSF stack as a ``(z, y, x)`` image, and for a depth low-rank model
-  also its lateral kernels.
+  also its lateral kernels; a lenslet-array model as its ``N × N`` sub-position responses.
 
 Each function returns napari "layer data tuples" ``(data, kwargs, "image")``. Pixels are read
 only when napari displays them, except one frame per output store (see
@@ -130,7 +130,8 @@ def output_store_layers(path: str | os.PathLike[str]) -> list[LayerData]:
     Returns
     -------
     list of (data, kwargs, "image")
-        First the volumes: a dask array ``(T, Z, Y, X)`` float32, one dask chunk per zarr
+        First the volumes: a dask array ``(T, Z, Y, X)`` (a list of them, highest resolution
+        first, with ``multiscale=True`` when the store has levels), one dask chunk per zarr
         chunk, with ``scale`` (frame interval in seconds, voxel size in micrometres),
         ``translate``, ``axis_labels``, ``units`` and ``contrast_limits``. Then, when the store
         has them, the projections ``max_z`` ``(T, 1, Y, X)``, ``max_y`` ``(T, Z, 1, X)`` and
@@ -184,7 +185,11 @@ def output_store_layers(path: str | os.PathLike[str]) -> list[LayerData]:
     # A new dask name on every read: napari's chunk cache then never serves a chunk read
     # before a running job wrote it.
     opened = uuid.uuid4().hex
-    volumes = _lazy(image, f"volrecon-volumes-{opened}")
+    volumes: Any = _lazy(image, f"volrecon-volumes-{opened}")
+    if len(ome.levels) > 1:  # napari draws the level that fits the screen
+        volumes = [volumes, *(_lazy(_level_array(path, group, level.path, image.ndim),
+                                    f"volrecon-volumes-{level.path}-{opened}")
+                              for level in ome.levels[1:])]
     metadata = {
         "volrecon_store": os.fspath(path.resolve()),
         "volrecon_kind": "output",
@@ -199,12 +204,28 @@ def output_store_layers(path: str | os.PathLike[str]) -> list[LayerData]:
         "contrast_limits": _contrast_limits(group, image, frame),
         "colormap": VOLUME_COLORMAP,
         "blending": "additive",
+        "multiscale": len(ome.levels) > 1,
         "metadata": metadata,
     }, "image")]
     layers.extend(_projection_layers(path, group, names, units, scale, translation,
                                      tuple(image.shape), layers[0][1]["contrast_limits"],
                                      opened))
     return layers
+
+
+def _level_array(path: Path, group: Any, level: str, ndim: int) -> Any:
+    """A lower resolution level of the image (same axes as level 0)."""
+    try:
+        array = group[level]
+    except KeyError as exc:
+        raise InputFileError(
+            f"{path}: resolution level '{level}' named in 'ome/multiscales' is missing; "
+            "re-run the job with --restart"
+        ) from exc
+    if array.ndim != ndim:
+        raise InputFileError(f"{path}: level '{level}' has {array.ndim} axes, level 0 {ndim}; "
+                             "re-run the job with --restart")
+    return array
 
 
 def _projection_layers(path: Path, group: Any, names: list[str], units: list[str],
@@ -273,7 +294,9 @@ def model_store_layers(path: str | os.PathLike[str]) -> list[LayerData]:
         - depth-convolution: the PSF stack ``(Z, Y, X)``;
         - depth-low-rank: the stack the model applies, ``h_z = Σ_r U[z, r] g_r``, computed one
           plane at a time when displayed, and the kernels ``(r, Y, X)`` (hidden);
-        - field-varying: the kernels ``(K, Z, Y, X)``, one PSF stack per field position.
+        - field-varying: the kernels ``(K, Z, Y, X)``, one PSF stack per field position;
+        - lenslet: the responses ``(N, N, Z, Y, X)``, one PSF stack per sub-position of a
+          lenslet (sliders for the sub-position's y and x).
         Depth is scaled by the model's depth step and starts at its first depth; y and x by
         its pixel size (micrometres).
 
@@ -314,7 +337,15 @@ def model_store_layers(path: str | os.PathLike[str]) -> list[LayerData]:
             "translate": [0.0, depth_start, 0.0, 0.0],
             "axis_labels": ["field position", "z", "y", "x"], "units": ["dimensionless", *space],
             **common}, "image")]
+    if stored.kind == "lenslet":
+        responses = da.moveaxis(array("psf"), 0, 2)  # (Z, N, N, Y, X) → (N, N, Z, Y, X)
+        return [(responses, {
+            "name": f"{stem} PSF per sub-position", "scale": [1.0, 1.0, depth_step, pixel, pixel],
+            "translate": [0.0, 0.0, depth_start, 0.0, 0.0],
+            "axis_labels": ["sub-position y", "sub-position x", "z", "y", "x"],
+            "units": ["dimensionless", "dimensionless", *space], **common}, "image")]
     raise ModelStoreError(
         f"{stored.path}: attribute '{_MODEL_ATTRIBUTE}/kind' is {stored.kind!r}, which this "
-        "viewer cannot show; known kinds: depth-convolution, depth-low-rank, field-varying"
+        "viewer cannot show; known kinds: depth-convolution, depth-low-rank, field-varying, "
+        "lenslet"
     )

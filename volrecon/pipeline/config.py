@@ -11,6 +11,7 @@ import json
 import math
 import os
 import tomllib
+import warnings
 from dataclasses import dataclass, field
 from functools import cache
 from pathlib import Path
@@ -72,7 +73,7 @@ class JobConfig:
     model_path, video_path, output_path : Path
         Resolved paths (`video_path` may be a glob pattern).
     video_component : str
-        Array path inside a zarr video store.
+        Array path inside a zarr store or an HDF5 file (``[video] dataset``).
     dark_path, flat_path : Path or None
         Calibration images.
     frames : tuple of int or None
@@ -87,6 +88,14 @@ class JobConfig:
         Write max projections.
     compression_level : int
         zstd level of the output.
+    shard_frames : int
+        Frames per file of the output's frame arrays (``[output] shard_frames``, default the
+        chain length, 32 for one-frame chains); a divisor or a multiple of the chain length.
+    levels : int or "auto"
+        Resolution levels of the output (``[output] levels``; "auto" resolves against the
+        model's grid when the store is created, :func:`volrecon.io.pyramid_levels`).
+    dtype : str
+        Element type of the output's frame arrays ("float32" or "float16").
     solver : SolverSettings
     compute : ComputeSettings
     """
@@ -106,6 +115,9 @@ class JobConfig:
     time_interval_s: float = 1.0
     max_projections: bool = False
     compression_level: int = 3
+    shard_frames: int = 32
+    levels: int | str = "auto"
+    dtype: str = "float32"
     solver: SolverSettings = field(default_factory=SolverSettings)
     compute: ComputeSettings = ComputeSettings()
 
@@ -128,6 +140,13 @@ class JobConfig:
                 else:
                     settings[section][key] = fingerprints.get(f"{section}.{key}", "")
         return settings
+
+    def level_count(self, shape_zyx: tuple[int, int, int]) -> int:
+        """Resolution levels of the output for volumes of `shape_zyx` ("auto": down to the
+        first level whose longer side is at most 64 px)."""
+        from volrecon.io.ome_zarr import pyramid_levels
+
+        return pyramid_levels(shape_zyx[1:]) if self.levels == "auto" else int(self.levels)
 
     def with_compute(self, **changes: Any) -> JobConfig:
         """A copy with other ``[compute]`` settings (checked; None removes a key)."""
@@ -204,6 +223,15 @@ def job_from_dict(document: dict[str, Any], *, base_dir: str | os.PathLike[str] 
             )
         frames = (int(start), int(stop))
     compute = document["compute"]
+    solver = SolverSettings(**document["solver"])
+    chain = solver.chain_frames
+    shard_frames = int(output.get("shard_frames", chain if chain > 1 else 32))
+    if chain % shard_frames and shard_frames % chain:
+        raise ConfigError(
+            f"{source}: key 'output.shard_frames' is {shard_frames} but solver.chain_frames is "
+            f"{chain}; use a divisor or a multiple of {chain} (one task must own every frame of "
+            "a shard)"
+        )
     return JobConfig(
         source=source,
         document=document,
@@ -211,7 +239,7 @@ def job_from_dict(document: dict[str, Any], *, base_dir: str | os.PathLike[str] 
         model_path=_resolve(base, document["model"]["path"]),
         video_path=_resolve(base, video["path"]),
         output_path=_resolve(base, output["path"]),
-        video_component=video.get("component", ""),
+        video_component=_video_dataset(video, source),
         dark_path=_resolve(base, video["dark"]) if "dark" in video else None,
         flat_path=_resolve(base, video["flat"]) if "flat" in video else None,
         frames=frames,
@@ -220,9 +248,28 @@ def job_from_dict(document: dict[str, Any], *, base_dir: str | os.PathLike[str] 
         time_interval_s=float(output["time_interval_s"]),
         max_projections=bool(output["max_projections"]),
         compression_level=int(output["compression_level"]),
-        solver=SolverSettings(**document["solver"]),
+        shard_frames=shard_frames,
+        levels=output["levels"] if output["levels"] == "auto" else int(output["levels"]),
+        dtype=str(output["dtype"]),
+        solver=solver,
         compute=ComputeSettings(**{k: compute[k] for k in compute}),
     )
+
+
+def _video_dataset(video: dict[str, Any], source: str) -> str:
+    """``[video] dataset``, or its older name ``component`` (kept working, with a warning).
+
+    One key names an array inside a container for HDF5 files and zarr stores alike; the job
+    file is not rewritten, so a store begun with ``component`` resumes unchanged.
+    """
+    if "component" not in video:
+        return str(video.get("dataset", ""))
+    if "dataset" in video:
+        raise ConfigError(f"{source}: keys 'video.dataset' and 'video.component' are both set; "
+                          "keep dataset only (component is its older name)")
+    warnings.warn(f"{source}: key 'video.component' is renamed; write dataset = "
+                  f"{video['component']!r} in [video]", FutureWarning, stacklevel=3)
+    return str(video["component"])
 
 
 def _resolve(base: Path, text: str) -> Path:

@@ -18,10 +18,11 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from volrecon.io.ome_zarr import downsample_yx, level_shape
 from volrecon.pipeline.execute import fft_threads_per_task
 from volrecon.pipeline.job import prepare_job
 from volrecon.pipeline.status import format_duration
-from volrecon.pipeline.store import PROJECTIONS, max_projections
+from volrecon.pipeline.store import PROJECTIONS, max_projections, store_file_count
 from volrecon.solvers.chain import solve_chain
 
 if TYPE_CHECKING:
@@ -59,9 +60,15 @@ class JobEstimate:
     hour_seconds : float
         The same prediction for one hour of 30 fps video (`HOUR_FRAMES` frames).
     store_bytes : float
-        Predicted size of the volumes (and projections) on disk.
+        Predicted size of the volumes (every resolution level, and the projections) on disk.
     compression_ratio : float
-        Raw float32 bytes over compressed bytes of the sampled volumes.
+        Raw float32 bytes over the stored bytes (in the store's dtype, compressed) of the
+        sampled volumes.
+    store_files, hour_files : int
+        Files of the finished store, and of one hour's store with the same settings (an upper
+        bound, :func:`volrecon.pipeline.store.store_file_count`).
+    shard_frames : int
+        Frames per file of the frame arrays.
     """
 
     frames: int
@@ -76,6 +83,9 @@ class JobEstimate:
     hour_seconds: float
     store_bytes: float
     compression_ratio: float
+    store_files: int
+    hour_files: int
+    shard_frames: int
 
     def summary(self) -> str:
         """Lines for the terminal."""
@@ -88,7 +98,9 @@ class JobEstimate:
             f"one hour of 30 fps video ({HOUR_FRAMES} frames) with these settings: about "
             f"{format_duration(self.hour_seconds)}",
             f"store: about {_size(self.store_bytes)} "
-            f"(compression {self.compression_ratio:.2g}x of float32)",
+            f"(volumes compressed {self.compression_ratio:.2g}x of float32) in at most "
+            f"{self.store_files} files ({self.shard_frames} frames per file); one hour: about "
+            f"{_size(self.store_bytes / self.frames * HOUR_FRAMES)} in {self.hour_files} files",
         ])
 
 
@@ -110,7 +122,7 @@ def _compressed_bytes(volumes: np.ndarray, level: int) -> float:
 
     with tempfile.TemporaryDirectory() as tmp:
         array = zarr.create_array(zarr.storage.LocalStore(tmp), shape=volumes.shape,
-                                  chunks=(1, *volumes.shape[1:]), dtype="float32",
+                                  chunks=(1, *volumes.shape[1:]), dtype=volumes.dtype,
                                   compressors=ZstdCodec(level=level))
         array[...] = volumes
         return float(sum(p.stat().st_size for p in (Path(tmp) / "c").rglob("*")
@@ -164,18 +176,33 @@ def estimate_job(job: JobConfig, *, sample_frames: int = 5) -> JobEstimate:
                                 warm_seconds=warm)
     hour = chain_solve_seconds(HOUR_FRAMES, job.solver, cold_seconds=cold, warm_seconds=warm)
     nz, ny, nx = model.shape_in
+    levels = job.level_count(model.shape_in)
+    itemsize = np.dtype(job.dtype).itemsize
     if volumes:
         sample = np.stack(volumes)
-        compressed = _compressed_bytes(sample, job.compression_level)
+        compressed = _compressed_bytes(sample.astype(job.dtype), job.compression_level)
         ratio = sample.nbytes / max(compressed, 1.0)
         per_volume = compressed / len(volumes)
+        level = sample
+        for _ in range(1, levels):
+            level = downsample_yx(level)
+            per_volume += _compressed_bytes(level.astype(job.dtype),
+                                            job.compression_level) / len(volumes)
         if job.max_projections:
             for name in PROJECTIONS:
                 projected = np.stack([max_projections(v)[name] for v in volumes])
-                per_volume += _compressed_bytes(projected, job.compression_level) / len(volumes)
+                per_volume += _compressed_bytes(projected.astype(job.dtype),
+                                                job.compression_level) / len(volumes)
     else:
         ratio = 1.0
-        per_volume = 4.0 * (nz * ny * nx + (ny * nx + nz * nx + nz * ny) * job.max_projections)
+        voxels = sum(nz * int(np.prod(level_shape((ny, nx), k))) for k in range(levels))
+        per_volume = itemsize * (voxels + (ny * nx + nz * nx + nz * ny) * job.max_projections)
+    shape = model.shape_in
+    files = {n_frames: store_file_count(n_frames, shape, shard_frames=job.shard_frames,
+                                        projections=job.max_projections, levels=levels,
+                                        dtype=job.dtype)
+             for n_frames in (prepared.n_frames, HOUR_FRAMES)}
     return JobEstimate(prepared.n_frames, len(seconds), cold, warm, iterations[0],
                        warm_iterations, solve / prepared.n_frames, parallel, solve / parallel,
-                       hour / parallel, per_volume * prepared.n_frames, ratio)
+                       hour / parallel, per_volume * prepared.n_frames, ratio,
+                       files[prepared.n_frames], files[HOUR_FRAMES], job.shard_frames)

@@ -61,10 +61,14 @@ from volrecon.pipeline.task import TaskContext
 
 if TYPE_CHECKING:
     from volrecon.models.base import PSFModel
+    from volrecon.pipeline.execute import LostWorker
 
 __all__ = ["JobProgress", "JobResult", "PreparedJob", "prepare_job", "run_job"]
 
 logger = logging.getLogger(__name__)
+
+#: Lost dask workers listed one by one in a run's record (all are counted).
+LOST_WORKERS_LISTED = 100
 
 
 @dataclass(frozen=True, eq=False)
@@ -192,6 +196,12 @@ def prepare_job(job: JobConfig) -> PreparedJob:
     from volrecon.models.base import PSFModel
 
     model = PSFModel.load(job.model_path)
+    if job.solver.method == "admm" and not model.shift_invariant:
+        raise ConfigError(
+            f"{job.source}: key 'solver.method' is \"admm\", which needs a shift-invariant "
+            f"model; {job.model_path} is a {model.kind} model: set method = \"fista\" or "
+            "\"rl\""
+        )
     source = open_frames(job.video_path, component=job.video_component)
     dark = read_image(job.dark_path, key="[video] dark") if job.dark_path is not None else None
     flat = read_image(job.flat_path, key="[video] flat") if job.flat_path is not None else None
@@ -439,7 +449,9 @@ def _create_store(prepared: PreparedJob, comparable: dict[str, Any]) -> JobStore
         scale_tzyx=(job.time_interval_s, geometry.depth_step_um, geometry.pixel_size_um,
                     geometry.pixel_size_um),
         depth_start_um=geometry.depth_start_um, metadata=metadata,
-        projections=job.max_projections, compression_level=job.compression_level)
+        projections=job.max_projections, compression_level=job.compression_level,
+        shard_frames=job.shard_frames, levels=job.level_count(model.shape_in),
+        dtype=job.dtype)
 
 
 def _run(prepared: PreparedJob, store: JobStore, *,
@@ -462,7 +474,8 @@ def _run(prepared: PreparedJob, store: JobStore, *,
         "frames_done_before": done_before, "outcome": "running"}
     store.update_attributes(runs=[*runs, run_record])
     tasks = plan_tasks(status, chain_frames=job.solver.chain_frames,
-                       frames_per_task=job.compute.frames_per_task)
+                       frames_per_task=job.compute.frames_per_task,
+                       shard_frames=store.shard_frames)
     context = TaskContext(
         source=prepared.source, first_frame=prepared.first_frame,
         correction=prepared.correction, model_path=os.fspath(job.model_path),
@@ -491,6 +504,15 @@ def _run(prepared: PreparedJob, store: JobStore, *,
                                  computed=counts["computed"], elapsed_s=elapsed,
                                  frames_per_second=rate, seconds_left=seconds_left))
 
+    def on_lost_worker(lost: LostWorker) -> None:
+        # Recorded at once, so that `volrecon status` shows it while the run goes on.
+        listed = list(run_record.get("lost_workers", []))
+        if len(listed) < LOST_WORKERS_LISTED:
+            listed.append(lost.record())
+        run_record.update(lost_worker_count=int(run_record.get("lost_worker_count", 0)) + 1,
+                          lost_workers=listed)
+        store.update_attributes(runs=[*runs, run_record])
+
     outcome = "error"
     failure: BaseException | None = None
     if progress is not None:  # the bar (or log line) from the start, not after a first task
@@ -498,8 +520,11 @@ def _run(prepared: PreparedJob, store: JobStore, *,
                              failed=failed, computed=0, elapsed_s=0.0, frames_per_second=0.0,
                              seconds_left=float("inf")))
     try:
-        execute_tasks(tasks, context, job.compute, on_result, client=client)
+        execute_tasks(tasks, context, job.compute, on_result, client=client,
+                      on_lost_worker=on_lost_worker)
         outcome = "complete" if counts["done"] == total else "stopped"
+        if run_record.get("lost_worker_count"):
+            store.remove_partial_files()  # left by workers killed mid-write; all tasks ended
     except BaseException as exc:
         failure = exc
         if isinstance(exc, KeyboardInterrupt):

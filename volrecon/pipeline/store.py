@@ -4,7 +4,8 @@ Layout (zarr v3; attributes in ``schemas/output-store.schema.json``; for users i
 ``workflows/README.md``)::
 
     volumes.zarr/                      group; attributes "ome" (OME-NGFF 0.5) and "volrecon"
-      0                                (T, Z, Y, X) float32, one frame per chunk, NaN = not done
+      0                                (T, Z, Y, X) float32, one frame per chunk, NaN = not done;
+                                       format 3: shards of shard_frames frames (one file each)
       diagnostics/                     group; attribute "failures" {frame: reason}
         status      (T,) uint8         0 pending, 1 done, 2 failed — written last, by the driver
         iterations  (T,) int32
@@ -17,6 +18,11 @@ Layout (zarr v3; attributes in ``schemas/output-store.schema.json``; for users i
     volumes.zarr.lock                  beside the store while a run writes it
 
 Volume chunks are written by the tasks, one frame per chunk, so no two tasks share a chunk.
+In a format 3 store the volume and the projections are zarr v3 sharded arrays: each file holds
+``shard_frames`` frames (``volumes.zarr/0/c/<shard>/0/0/0``), one inner chunk per frame, so a
+reader still reads one frame's bytes (through the shard's index); the task owning a shard's
+frames writes the file whole, once (:mod:`volrecon.pipeline.shards`). ``shard_frames = 1`` (and
+every format 1 and 2 store) keeps one file per chunk.
 The diagnostics arrays are written only by the driver, after a task's volumes are on disk:
 a frame's ``status`` turns non-zero only when its data is complete.
 
@@ -46,8 +52,15 @@ from typing import Any, Literal
 import numpy as np
 
 from volrecon.errors import ConfigError, InputFileError, StoreMismatchError
-from volrecon.io.ome_zarr import IMAGE_PATH, chunk_codecs, create_ome_image
+from volrecon.io.ome_zarr import (
+    IMAGE_PATH,
+    chunk_codecs,
+    create_ome_image,
+    parse_ome_image,
+    shard_shape,
+)
 from volrecon.io.zarr_groups import group_attributes
+from volrecon.pipeline.shards import is_sharded, shard_count, shard_file, shard_frames_of
 
 __all__ = [
     "DIAGNOSTICS",
@@ -63,14 +76,18 @@ __all__ = [
     "creation_interrupted",
     "is_job_store",
     "is_vacant",
+    "level_paths",
     "max_projections",
+    "store_file_count",
 ]
 
-#: Layout version written: 2 = every chunk carries a CRC32C checksum.
-FORMAT_VERSION = 2
+#: Layout version written: 2 = every chunk carries a CRC32C checksum; 3 = the frame arrays may
+#: be sharded (attribute ``shard_frames``; 1 is the format 2 layout).
+FORMAT_VERSION = 3
 #: Versions opened, resumed and verified (format 1 stores have no checksums: a resumed one
-#: keeps its arrays' codecs, and verify then finds only chunks that do not decode).
-READABLE_FORMATS = (1, 2)
+#: keeps its arrays' codecs, and verify then finds only chunks that do not decode; format 1
+#: and 2 stores keep one file per chunk when resumed).
+READABLE_FORMATS = (1, 2, 3)
 STORE_ATTRIBUTE = "volrecon"
 STATUS_PENDING, STATUS_DONE, STATUS_FAILED = 0, 1, 2
 STATUS_NAMES = {STATUS_PENDING: "pending", STATUS_DONE: "done", STATUS_FAILED: "failed"}
@@ -191,7 +208,9 @@ class JobStore:
         arrays = {}
         projections = ([f"projections/{name}" for name in PROJECTIONS]
                        if "projections" in group else [])
-        for key in (IMAGE_PATH, *projections, *(f"diagnostics/{name}" for name in DIAGNOSTICS)):
+        levels = level_paths(group, path)
+        for key in (IMAGE_PATH, *levels, *projections,
+                    *(f"diagnostics/{name}" for name in DIAGNOSTICS)):
             try:
                 arrays[key] = group[key]
             except DAMAGE_ERRORS as exc:
@@ -202,14 +221,15 @@ class JobStore:
             if not isinstance(arrays[key], zarr.Array):
                 raise InputFileError(f"{path}: '{key}' is not an array; {_DAMAGED_FIX}")
         self._diagnostics = {name: arrays[f"diagnostics/{name}"] for name in DIAGNOSTICS}
-        self._frame_arrays = {key: arrays[key] for key in (IMAGE_PATH, *projections)}
+        self._frame_arrays = {key: arrays[key] for key in (IMAGE_PATH, *levels, *projections)}
 
     # ------------------------------------------------------------------------- lifecycle
     @classmethod
     def create(cls, path: str | os.PathLike[str], *, shape_zyx: tuple[int, int, int],
                n_frames: int, scale_tzyx: tuple[float, float, float, float],
                metadata: dict[str, Any], projections: bool = False,
-               compression_level: int = 3, depth_start_um: float = 0.0) -> JobStore:
+               compression_level: int = 3, depth_start_um: float = 0.0,
+               shard_frames: int = 1, levels: int = 1, dtype: str = "float32") -> JobStore:
         """Create a new store (`path` must not exist or be an empty folder).
 
         The ``volrecon`` attribute is first written with ``state = "creating"`` and set to
@@ -223,23 +243,34 @@ class JobStore:
         metadata : dict
             JSON-able job attributes (settings, fingerprints, provenance) stored under
             ``attributes["volrecon"]``.
+        shard_frames : int
+            Frames per file of the volume and the projections (zarr v3 shards of one-frame
+            inner chunks); 1: one file per chunk.
+        levels : int
+            Resolution levels of the image (arrays ``"0"`` … ``"levels - 1"``, each the 2 × 2
+            lateral mean of the one above, written with every frame by the tasks).
+        dtype : {"float32", "float16"}
+            Element type of the levels and projections.
         """
         import zarr
 
         path = Path(path)
         if path.is_dir() and is_vacant(path):
             shutil.rmtree(path)
-        attributes = {"format_version": FORMAT_VERSION, "state": "creating", **metadata}
+        attributes = {"format_version": FORMAT_VERSION, "state": "creating",
+                      "shard_frames": shard_frames, **metadata}
         group: Any = create_ome_image(path, shape_tzyx=(n_frames, *shape_zyx),
                                  scale_tzyx=scale_tzyx, name="volumes",
                                  translation_tzyx=(0.0, depth_start_um, 0.0, 0.0),
                                  compression_level=compression_level,
-                                 attributes={STORE_ATTRIBUTE: _json(attributes)})
+                                 attributes={STORE_ATTRIBUTE: _json(attributes)},
+                                 shard_frames=shard_frames, levels=levels, dtype=dtype)
         chunk = min(n_frames, DIAGNOSTICS_CHUNK)
         diagnostics = group.create_group("diagnostics", attributes={
             "failures": {}, "status_codes": {str(k): v for k, v in STATUS_NAMES.items()}})
-        for name, (dtype, fill) in DIAGNOSTICS.items():
-            diagnostics.create_array(name, shape=(n_frames,), chunks=(chunk,), dtype=dtype,
+        for name, (record_dtype, fill) in DIAGNOSTICS.items():
+            diagnostics.create_array(name, shape=(n_frames,), chunks=(chunk,),
+                                     dtype=record_dtype,
                                      fill_value=fill, compressors=chunk_codecs(3),
                                      dimension_names=["t"])
         if projections:
@@ -248,8 +279,11 @@ class JobStore:
             sizes = {"t": n_frames, "z": nz, "y": ny, "x": nx}
             for name, (_, dims) in PROJECTIONS.items():
                 shape = tuple(sizes[d] for d in dims)
-                group_p.create_array(name, shape=shape, chunks=(1, *shape[1:]),
-                                     dtype="float32", fill_value=np.nan,
+                chunks = (1, *shape[1:])
+                group_p.create_array(name, shape=shape, chunks=chunks,
+                                     shards=shard_shape(chunks, shape,
+                                                        shard_frames=shard_frames),
+                                     dtype=dtype, fill_value=np.nan,
                                      compressors=chunk_codecs(compression_level),
                                      dimension_names=list(dims))
         attributes["state"] = "ready"
@@ -337,6 +371,11 @@ class JobStore:
         return int(self.image.shape[0])
 
     @property
+    def shard_frames(self) -> int:
+        """Frames per file of the volume (1 when not sharded, as in format 1 and 2 stores)."""
+        return shard_frames_of(self.image)
+
+    @property
     def image(self) -> Any:
         """The ``(T, Z, Y, X)`` zarr image array."""
         return self.group[IMAGE_PATH]
@@ -414,8 +453,8 @@ class JobStore:
             If a diagnostics chunk this write must merge into is damaged.
         """
         region = slice(records.start, records.stop)
-        self.sync([path for t in range(records.start, records.stop)
-                   for path in self.frame_chunk_paths(t)])
+        self.sync(dict.fromkeys(path for t in range(records.start, records.stop)
+                                for path in self.frame_chunk_paths(t)))
         try:
             for name in DIAGNOSTICS:
                 if name != "status":
@@ -494,11 +533,17 @@ class JobStore:
                                   *array.metadata.encode_chunk_key(coords).split("/"))
 
     def frame_chunk_paths(self, t: int) -> list[Path]:
-        """The chunk files of frame `t` in ``"0"`` and the projections (whether they exist
-        or not: a chunk equal to the fill value is never written)."""
-        return [self.chunk_path(array, (t, *rest))
-                for array in self.frame_arrays().values()
-                for rest in _grid(array.cdata_shape[1:])]
+        """The files holding frame `t` in ``"0"`` and the projections (whether they exist
+        or not: a chunk equal to the fill value is never written): its chunks, or the shard
+        file of a sharded array."""
+        paths = []
+        for array in self.frame_arrays().values():
+            if is_sharded(array):
+                paths.append(shard_file(self.path, array, t))
+            else:
+                paths += [self.chunk_path(array, (t, *rest))
+                          for rest in _grid(array.cdata_shape[1:])]
+        return paths
 
     def diagnostics_chunk_paths(self, region: slice, *, only: Iterable[str] | None = None,
                                 skip: Iterable[str] = ()) -> list[Path]:
@@ -533,7 +578,54 @@ class JobStore:
         return removed
 
 
+def store_file_count(n_frames: int, shape_zyx: tuple[int, int, int], *, shard_frames: int,
+                     projections: bool, levels: int = 1, dtype: str = "float32") -> int:
+    """Files of a finished store of `n_frames` frames (what ``--estimate`` reports).
+
+    Frame arrays (every level, every projection) hold ``ceil(T / shard_frames)`` files each
+    (sharded), or one per chunk (``shard_frames = 1``; a level may be split along z,
+    :func:`volume_chunks`); each diagnostics array one per 4096 frames; plus one
+    ``zarr.json`` per group and array. Frames that failed (all NaN) leave chunks out, so this
+    is an upper bound.
+
+    Examples
+    --------
+    >>> store_file_count(108_000, (32, 256, 256), shard_frames=32, projections=True)
+    13675
+    """
+    from volrecon.io.ome_zarr import level_shape, volume_chunks
+
+    itemsize = np.dtype(dtype).itemsize
+    n_projections = len(PROJECTIONS) if projections else 0
+    if shard_frames > 1:
+        frame_files = (levels + n_projections) * shard_count(n_frames, shard_frames)
+    else:
+        per_frame = 0
+        for k in range(levels):
+            ny, nx = level_shape(shape_zyx, k)[1:]
+            planes = volume_chunks((shape_zyx[0], ny, nx), itemsize=itemsize)[1]
+            per_frame += math.ceil(shape_zyx[0] / planes)
+        frame_files = n_frames * (per_frame + n_projections)
+    diagnostics = len(DIAGNOSTICS) * math.ceil(n_frames / DIAGNOSTICS_CHUNK)
+    metadata = 1 + levels + 1 + len(DIAGNOSTICS) + ((1 + n_projections) if projections else 0)
+    return frame_files + diagnostics + metadata
+
+
 # ------------------------------------------------------------------------------- helpers
+def _level_count(attributes: dict[str, Any], path: str | os.PathLike[str]) -> int:
+    """Resolution levels of a store's image (its OME-NGFF multiscale's datasets)."""
+    try:
+        return len(parse_ome_image(attributes, source=path).levels)
+    except InputFileError:
+        return 1  # the image array's own checks name the damage
+
+
+def level_paths(group: Any, path: str | os.PathLike[str]) -> list[str]:
+    """Array paths of the image's lower resolution levels (``["1", "2", …]``; empty for a
+    one-level store)."""
+    return [str(level) for level in range(1, _level_count(group.attrs.asdict(), path))]
+
+
 def _grid(shape: tuple[int, ...]) -> Iterator[tuple[int, ...]]:
     """Every index of an array of `shape`, in C order."""
     yield from (tuple(int(i) for i in index) for index in np.ndindex(*shape))

@@ -15,12 +15,14 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from volrecon.io.ome_zarr import IMAGE_PATH
+from volrecon.io.ome_zarr import IMAGE_PATH, downsample_yx
+from volrecon.pipeline.shards import FrameWriter
 from volrecon.pipeline.store import (
     PROJECTIONS,
     STATUS_DONE,
     STATUS_FAILED,
     FrameRecords,
+    level_paths,
     max_projections,
 )
 from volrecon.solvers.chain import solve_chain
@@ -112,7 +114,10 @@ def run_task(context: TaskContext, spec: TaskSpec) -> FrameRecords:
     interruptions. A frame that fails (its
     input is not finite, the solver refuses it, the result is not finite or its residual
     exceeds ``max_residual``) is written as NaN, recorded with its reason, and the chain
-    restarts at the next frame (:func:`volrecon.solvers.solve_chain`).
+    restarts at the next frame (:func:`volrecon.solvers.solve_chain`). A volume beyond the
+    range of a float16 store fails the same way (its reason names ``[output] dtype``). Each
+    stored frame is written to every resolution level (the 2 × 2 lateral mean of the level
+    above, :func:`volrecon.io.ome_zarr.downsample_yx`) and, when asked, to the projections.
 
     Raises
     ------
@@ -125,9 +130,13 @@ def run_task(context: TaskContext, spec: TaskSpec) -> FrameRecords:
     threads = context.fft_threads or 1
     model = _load_model(context.model_path, context.model_fingerprint, context.device, threads)
     group: Any = zarr.open_group(zarr.storage.LocalStore(context.store_path), mode="r+")
-    image = group[IMAGE_PATH]
-    projections = ({name: group[f"projections/{name}"] for name in PROJECTIONS}
-                   if context.projections else {})
+    writers = {IMAGE_PATH: FrameWriter(context.store_path, group[IMAGE_PATH])}
+    levels = level_paths(group, context.store_path)
+    writers.update({key: FrameWriter(context.store_path, group[key]) for key in levels})
+    largest = _largest_value(group[IMAGE_PATH].dtype)
+    if context.projections:
+        writers.update({name: FrameWriter(context.store_path, group[f"projections/{name}"])
+                        for name in PROJECTIONS})
     n = spec.stop - spec.start
     records: dict[str, np.ndarray] = {
         "iterations": np.zeros(n, np.int32), "objective": np.full(n, np.nan),
@@ -146,15 +155,22 @@ def run_task(context: TaskContext, spec: TaskSpec) -> FrameRecords:
             if t < chain_start:  # lead-in: only its state goes on
                 continue
             i = t - spec.start
-            if result.volume is not None:
+            failure = result.failure or ("no volume" if result.volume is None else None)
+            if failure is None and result.volume is not None and largest is not None:
+                peak = float(np.abs(result.volume).max())
+                if peak > largest:
+                    failure = (f"values up to {peak:.4g} exceed the store's "
+                               f"{group[IMAGE_PATH].dtype} range ({largest:.6g}); set "
+                               "[output] dtype = \"float32\" (or scale the frames down)")
+            if failure is None and result.volume is not None:
                 volume = result.volume
                 records["status"][i] = STATUS_DONE
             else:
                 volume = np.full(model.shape_in, np.nan, dtype=np.float32)
                 records["status"][i] = STATUS_FAILED
-                failures[t] = result.failure or "no volume"
+                failures[t] = failure or "no volume"
                 logger.warning("frame %d (video frame %d): %s", t, context.first_frame + t,
-                               result.failure)
+                               failure)
             info = result.info
             if info is not None:
                 records["iterations"][i] = info.iterations
@@ -162,9 +178,20 @@ def run_task(context: TaskContext, spec: TaskSpec) -> FrameRecords:
                 records["residual"][i] = info.residual
                 records["converged"][i] = info.converged
                 records["seconds"][i] = info.seconds
-            image[t] = volume
-            if projections:
+            writers[IMAGE_PATH].write(t, volume)
+            level = volume
+            for key in levels:
+                level = downsample_yx(level)
+                writers[key].write(t, level)
+            if context.projections:
                 for name, projected in max_projections(volume).items():
-                    projections[name][t] = projected
+                    writers[name].write(t, projected)
+    for writer in writers.values():
+        writer.check_written()
     return FrameRecords(start=spec.start, stop=spec.stop, failures=failures, **records)
 
+
+def _largest_value(dtype: Any) -> float | None:
+    """Largest finite value of a store's element type, when below float32's (float16)."""
+    info = np.finfo(dtype)
+    return float(info.max) if info.max < np.finfo(np.float32).max else None

@@ -26,6 +26,7 @@ import numpy as np
 
 from volrecon.pipeline.export import parse_frame_range
 from volrecon.pipeline.lock import StoreLock
+from volrecon.pipeline.shards import is_sharded, shard_file
 from volrecon.pipeline.store import DAMAGE_ERRORS, STATUS_FAILED, STATUS_PENDING, JobStore
 
 __all__ = ["VerifyProgress", "VerifyReport", "verify_progress_bar", "verify_store"]
@@ -189,21 +190,27 @@ def _check(store: JobStore, selected: slice, *, workers: int | None,
 
 def _check_frame(store: JobStore, arrays: dict[str, Any], t: int, *, expect_chunks: bool
                  ) -> tuple[int, list[tuple[str, Path | None]]]:
-    """Read every chunk of frame `t`; what is damaged, and the file to delete (if any)."""
+    """Read every chunk of frame `t`; what is damaged, and the file to delete (if any).
+
+    A shard file holds other frames too: it is never deleted; the frame is marked pending and
+    the next run rewrites the whole shard (:func:`volrecon.pipeline.plan.plan_tasks`)."""
     problems: list[tuple[str, Path | None]] = []
     for key, array in arrays.items():
         what = "volume" if key == "0" else f"projection {key.rsplit('/', 1)[-1]}"
         chunk_shape = array.chunks[1:]
         for rest in np.ndindex(*array.cdata_shape[1:]):
-            chunk = store.chunk_path(array, (t, *rest))
+            sharded = is_sharded(array)
+            chunk = (shard_file(store.path, array, t) if sharded
+                     else store.chunk_path(array, (t, *rest)))
             region = (t, *(slice(c * n, (c + 1) * n)
                              for c, n in zip(rest, chunk_shape, strict=True)))
             try:
-                array[region]
+                values = array[region]
             except DAMAGE_ERRORS:
-                problems.append((f"{what} chunk damaged", chunk))
+                problems.append((f"{what} chunk damaged", None if sharded else chunk))
                 continue
-            if expect_chunks and not chunk.is_file():
+            if expect_chunks and (not chunk.is_file()
+                                  or (sharded and np.isnan(values).all())):
                 problems.append((f"{what} chunk missing", None))
     return t, problems
 

@@ -11,7 +11,7 @@ from scipy.signal import fftconvolve
 import volrecon
 from volrecon.errors import ConfigError, ShapeError
 from volrecon.io import FrameCorrection
-from volrecon.napari.preview import preview_frame, read_frame
+from volrecon.napari.preview import preview_frame, preview_window, read_frame, window_bounds
 from volrecon.napari.sample import demo_sample, hydrogel_sample, sample_cache_folder
 from volrecon.solvers import SolverSettings
 
@@ -118,3 +118,30 @@ def test_demo_sample_runs_the_demo_once_and_opens_its_store(tmp_path, monkeypatc
     # Second call: the finished demo is reused (nothing recomputed, same store).
     again = demo_sample(n_frames=2)
     assert again[0][1]["metadata"]["volrecon_store"] == kwargs["metadata"]["volrecon_store"]
+
+
+def test_preview_window_of_a_still_bead_and_its_residual(model):
+    frames = np.stack([_bead_frame(model)] * 4) + 100.0
+    frames[2] += 1.0  # frames differ a little, so the window's frames differ too
+    before = frames.copy()
+    dark = np.full(frames.shape[1:], 100.0, np.float32)
+    settings = SolverSettings(method="admm", iterations=80, temporal_window=4,
+                              temporal_weight=0.1)
+    result = preview_window(frames, model, settings, index=2,
+                            correction=FrameCorrection.build(dark_yx=dark))
+    np.testing.assert_array_equal(frames, before)  # input untouched
+    # Known synthetic truth: the bead sits at voxel (0, 8, 15).
+    assert np.unravel_index(result.volume_zyx.argmax(), SHAPE_ZYX) == (0, 8, 15)
+    # Reference: b − A v with A v from scipy.signal.fftconvolve, as for a single frame.
+    psf = gaussian_psf(SHAPE_ZYX)
+    ny, nx = SHAPE_ZYX[1:]
+    av = sum(fftconvolve(v, h)[ny // 2:ny // 2 + ny, nx // 2:nx // 2 + nx]
+             for v, h in zip(result.volume_zyx.astype(np.float64), psf, strict=True))
+    np.testing.assert_allclose(result.residual_yx, (frames[2] - dark) - av, atol=1e-3)
+    assert window_bounds(2, 4, 4) == (0, 4) and window_bounds(50, 60, 8) == (46, 54)
+    with pytest.raises(ShapeError, match="outside the window of 4 frames"):
+        preview_window(frames, model, settings, index=4)
+    with pytest.raises(ShapeError, match="model's sensor"):
+        preview_window(frames[:, :5], model, settings, index=0)
+    with pytest.raises(ShapeError, match="3 axes"):
+        preview_window(frames[0], model, settings, index=0)

@@ -110,6 +110,59 @@ def test_without_dark_frames_the_intercept_is_fitted(rng: np.random.Generator):
     assert noise.dark_frames == 0 and not noise.dark_mean_variance_yx.any()
 
 
+UNIT_GAIN_CAMERA = Camera(quantum_efficiency=0.7, gain_adu_per_electron=1.0,
+                          read_noise_electrons=1.6, offset_adu=100.0,
+                          dark_current_electrons_per_s=0.0)
+
+
+def _drifting_triples(rng: np.random.Generator, camera: Camera, photons: np.ndarray,
+                      drift_px: float, runs: int = 4) -> list[np.ndarray]:
+    """Raw runs of 3 frames of a scene drifting `drift_px` pixels per frame along x."""
+    from scipy.ndimage import shift
+
+    frames = np.stack([shift(photons, (0.0, drift_px * t), order=1, mode="nearest")
+                       for t in range(3)])
+    return [camera.expose(frames, rng=rng) for _ in range(runs)]
+
+
+@pytest.mark.parametrize(("level", "drift_px"), [(10.0, 0.3), (40.0, 0.0), (40.0, 1.0)])
+def test_gain_of_a_known_camera_with_dark_frames(tmp_path: Path, rng: np.random.Generator,
+                                                 level: float, drift_px: float):
+    # A camera of our own with known gain (1 count per electron) and offset (100 counts),
+    # a slowly drifting scene as in a real video.
+    shape = (96, 96)
+    photons = _scene(rng, shape, level)
+    path = tmp_path / "dark.tif"
+    tifffile.imwrite(path, UNIT_GAIN_CAMERA.dark_frames(shape, 40, rng=rng),
+                     photometric="minisblack")
+    mean, variance, n = dark_statistics(str(path))
+    correction = FrameCorrection.build(dark_yx=mean)
+    triples = [correction.apply(t) for t in
+               _drifting_triples(rng, UNIT_GAIN_CAMERA, photons, drift_px)]
+    noise = estimate_frame_noise(triples, correction, dark_variance_yx=variance,
+                                 dark_frames=n)
+    # Reference: the simulated camera's gain (EMVA 1288 photon-transfer slope = K). The
+    # issue asks for 5 %; the standard error here is ~1 % (measured 0.98-1.04 over seeds).
+    assert noise.gain_adu_per_electron == pytest.approx(1.0, rel=0.05)
+
+
+def test_gain_without_dark_frames_is_not_biased_by_shot_noise_skew(rng: np.random.Generator):
+    # Without dark frames the slope is a regression of the squared second difference on the
+    # mean of the same frames; Poisson noise makes the two co-vary (third cumulant K² q x),
+    # which biased the gain upwards by ~10 % at this level before the correction (measured).
+    shape = (96, 96)
+    photons = _scene(rng, shape, 40.0)
+    correction = FrameCorrection.build(
+        dark_yx=np.full(shape, UNIT_GAIN_CAMERA.offset_adu, np.float32))
+    triples = [correction.apply(t) for t in
+               _drifting_triples(rng, UNIT_GAIN_CAMERA, photons, 0.3, runs=8)]
+    noise = estimate_frame_noise(triples, correction)
+    # Reference: the simulated camera's gain, 1 count per electron; 3 standard errors
+    # (~2-3 % each with 8 runs) and at most 8 %.
+    assert abs(noise.gain_adu_per_electron - 1.0) <= 3 * noise.gain_stderr
+    assert noise.gain_adu_per_electron == pytest.approx(1.0, rel=0.08)
+
+
 def test_without_dark_frames_a_dim_scene_warns(rng: np.random.Generator):
     shape = (64, 64)
     photons = _scene(rng, shape, 3.0)

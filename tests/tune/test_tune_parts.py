@@ -211,3 +211,32 @@ def test_chain_warm_starts_from_the_previous_frame(rng: np.random.Generator):
     second = reconstruct(frames[1], model, iterations=5, l1=0.01, tol=0.0, init=info.state)
     np.testing.assert_array_equal(chain[0], first)
     np.testing.assert_array_equal(chain[1], second)
+
+
+# -------------------------------------------------------------------------------- grid edge
+def test_choice_on_the_upper_edge_warns_once_per_weight():
+    from volrecon.errors import VolreconWarning
+    from volrecon.tune.sweep import SweepCell
+    from volrecon.tune.tune import _upper_edges
+
+    def cell(tv, l1):
+        return SweepCell(tv_units=tv, l1_units=l1, tv=tv, l1=l1, stage=0, discrepancy=(1.0,),
+                         prediction_error=(0.1,), reference=None, stability=math.nan,
+                         volumes=np.zeros((1, 1, 2, 2), np.float32), seconds=0.0)
+
+    cells = [cell(t, w) for t in (0.0, 0.1, 1.0) for w in (0.0, 1.0, 10.0)]
+    inside = next(c for c in cells if (c.tv_units, c.l1_units) == (0.1, 1.0))
+    assert _upper_edges(cells, inside, 2.0, widened=False) == ""
+    corner = next(c for c in cells if (c.tv_units, c.l1_units) == (1.0, 10.0))
+    with pytest.warns(VolreconWarning) as record:
+        assert _upper_edges(cells, corner, 2.0, widened=False) == "tv and l1"
+    messages = [str(w.message) for w in record]
+    assert len(messages) == 2 and all("\n" not in m for m in messages)
+    assert "best tv = 2 (1 u) lies on the upper edge" in messages[0]
+    assert f"widening it once more to {FINE_STEP:.3g} u" in messages[0]
+    assert "best l1 = 20 (10 u)" in messages[1]
+    with pytest.warns(VolreconWarning, match="still on the upper edge of the sweep after"):
+        _upper_edges(cells, corner, 2.0, widened=True)
+    # Zero is a true bound: a choice of tv = 0 never warns about the lower edge.
+    zero = next(c for c in cells if (c.tv_units, c.l1_units) == (0.0, 1.0))
+    assert _upper_edges(cells, zero, 2.0, widened=False) == ""

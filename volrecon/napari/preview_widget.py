@@ -1,4 +1,8 @@
-"""The preview dock widget: reconstruct one frame with chosen settings, off the GUI thread."""
+"""The preview dock widget: reconstruct one frame with chosen settings, off the GUI thread.
+
+With a temporal window above 1 it reconstructs the window around the frame with the temporal
+prior (:func:`volrecon.napari.preview.preview_window`) and shows that frame's volume.
+"""
 
 from __future__ import annotations
 
@@ -23,7 +27,13 @@ from magicgui.widgets.bases import Widget
 
 from volrecon.errors import ConfigError, ShapeError, VolreconError
 from volrecon.napari._widget_tools import BackgroundJob, chosen_path
-from volrecon.napari.preview import PreviewResult, preview_frame, read_frame
+from volrecon.napari.preview import (
+    PreviewResult,
+    preview_frame,
+    preview_window,
+    read_frame,
+    window_bounds,
+)
 from volrecon.napari.stores import VOLUME_COLORMAP
 from volrecon.solvers import METHODS, SolverSettings
 
@@ -58,6 +68,31 @@ class _Failure:
     message: str
 
 
+def _layer_frames(data: Any, index: int, window: int, name: str) -> tuple[np.ndarray, int]:
+    """The frames of the window around `index` of a video layer: ``(W, Y, X)`` and the
+    position of `index` in it."""
+    if isinstance(data, list | tuple):  # multiscale: full resolution
+        data = data[0]
+    if getattr(data, "ndim", 0) < 3:
+        raise ShapeError(f"layer '{name}' is a single frame; a temporal window needs a video "
+                         "layer (t, y, x)")
+    start, stop = window_bounds(index, int(data.shape[0]), window)
+    frames = [_layer_frame(data, t, name) for t in range(start, stop)]
+    return np.stack(frames), index - start
+
+
+def _file_frames(path: Path, index: int, window: int) -> tuple[np.ndarray, int]:
+    """As :func:`_layer_frames`, for a video file."""
+    from volrecon.io import open_frames
+
+    source = open_frames(path)
+    if not 0 <= index < source.n_frames:
+        raise ShapeError(f"{path}: frame {index} is outside 0:{source.n_frames}; choose a "
+                         "frame of the video")
+    start, stop = window_bounds(index, source.n_frames, window)
+    return source.read(start, stop).astype(np.float32), index - start
+
+
 def _layer_frame(data: Any, index: int, name: str) -> np.ndarray:
     """Frame `index` (axis 0) of an image layer's data, singleton axes dropped: (Y, X)."""
     if getattr(data, "ndim", 0) < 2:
@@ -78,6 +113,14 @@ def _layer_frame(data: Any, index: int, name: str) -> np.ndarray:
     return frame
 
 
+def _label(settings: SolverSettings) -> str:
+    """The settings' label, with the temporal window when there is one."""
+    if settings.temporal_window == 1:
+        return settings.label()
+    return (f"{settings.label()}, window {settings.temporal_window} "
+            f"weight {settings.temporal_weight:g}")
+
+
 class PreviewWidget(Container[Widget]):
     """Reconstruct a frame with chosen solver settings and add the volume and residual.
 
@@ -93,6 +136,10 @@ class PreviewWidget(Container[Widget]):
 
     def __init__(self, napari_viewer: napari.viewer.Viewer) -> None:
         self._viewer = napari_viewer
+        self._job_file = FileEdit(label="settings from job", mode=FileDialogMode.EXISTING_FILE,
+                                  filter="Job file (*.toml)",
+                                  tooltip="optional: fill the model and [solver] settings "
+                                          "below from a job file")
         self._model_path = FileEdit(label="PSF model", mode=FileDialogMode.EXISTING_DIRECTORY)
         self._source = ComboBox(label="frame from", choices=self._source_choices)
         self._frame_file = FileEdit(label="frame file", mode=FileDialogMode.EXISTING_FILE,
@@ -107,14 +154,21 @@ class PreviewWidget(Container[Widget]):
         self._iterations = SpinBox(label="iterations", min=1, max=100_000, value=50)
         self._tv = LineEdit(label="tv", value="0")
         self._l1 = LineEdit(label="l1", value="0")
+        self._window = SpinBox(label="temporal window", min=1, max=64, value=1,
+                               tooltip="frames solved together with the temporal prior (ADMM), "
+                                       "as [solver] temporal_window")
+        self._weight = LineEdit(label="temporal weight", value="0",
+                                tooltip="[solver] temporal_weight")
         self._grid = CheckBox(text="show previews side by side (grid view)", value=False)
         self._run = PushButton(text="Reconstruct")
         self._message = Label(value="")
-        super().__init__(widgets=[self._model_path, self._source, self._frame_file, self._index,
-                                  self._dark_file, self._binning, self._method,
-                                  self._iterations, self._tv, self._l1, self._grid, self._run,
+        super().__init__(widgets=[self._job_file, self._model_path, self._source,
+                                  self._frame_file, self._index, self._dark_file,
+                                  self._binning, self._method, self._iterations, self._tv,
+                                  self._l1, self._window, self._weight, self._grid, self._run,
                                   self._message])
         self._run.changed.connect(self.start)
+        self._job_file.changed.connect(self.load_job_settings)
         self._source.changed.connect(self._update_enabled)
         self._viewer.layers.events.inserted.connect(self._refresh_sources)
         self._viewer.layers.events.removed.connect(self._refresh_sources)
@@ -146,6 +200,32 @@ class PreviewWidget(Container[Widget]):
                 here = layer.world_to_data(self._viewer.dims.point)[0]
                 self._index.value = int(np.clip(np.rint(here), 0, layer.data.shape[0] - 1))
 
+    def load_job_settings(self, _value: Any = None) -> None:
+        """Fill the model and solver fields from the chosen job file (its ``[solver]``)."""
+        from volrecon.pipeline import load_job
+
+        path = chosen_path(self._job_file)
+        if path is None:
+            return
+        try:
+            job = load_job(path)
+        except VolreconError as exc:
+            self._message.value = str(exc)
+            return
+        solver = job.solver
+        if job.model_path.is_dir():
+            self._model_path.value = job.model_path
+        self._method.value = solver.method
+        note = ""
+        if isinstance(solver.iterations, int):
+            self._iterations.value = solver.iterations
+        else:
+            note = f"; iterations = {solver.iterations!r} kept at {self._iterations.value}"
+        self._tv.value, self._l1.value = f"{solver.tv:g}", f"{solver.l1:g}"
+        self._window.value = solver.temporal_window
+        self._weight.value = f"{solver.temporal_weight:g}"
+        self._message.value = f"settings from {path}: {_label(solver)}{note}"
+
     def _request(self) -> _Request:
         model_path = chosen_path(self._model_path)
         if model_path is None:
@@ -156,8 +236,14 @@ class PreviewWidget(Container[Widget]):
         except ValueError as exc:
             raise ConfigError(f"tv and l1 must be numbers; got {self._tv.value!r}, "
                               f"{self._l1.value!r}") from exc
+        try:
+            weight = float(self._weight.value)
+        except ValueError as exc:
+            raise ConfigError(f"the temporal weight must be a number; got "
+                              f"{self._weight.value!r}") from exc
         settings = SolverSettings(method=self._method.value, iterations=self._iterations.value,
-                                  tv=tv, l1=l1)
+                                  tv=tv, l1=l1, temporal_window=int(self._window.value),
+                                  temporal_weight=weight)
         source = self._source.value
         frame_path, data, name = None, None, ""
         if source == FROM_FILE:
@@ -191,13 +277,21 @@ class PreviewWidget(Container[Widget]):
 
         try:
             model = self._model(request.model_path)
+            dark = None if request.dark_path is None else read_image(request.dark_path)
+            correction = FrameCorrection.build(dark_yx=dark, binning=request.binning,
+                                               name_dark=str(request.dark_path))
+            window = request.settings.temporal_window
+            if window > 1:
+                frames, position = (
+                    _file_frames(request.frame_path, request.index, window)
+                    if request.frame_path is not None else
+                    _layer_frames(request.layer_data, request.index, window, request.layer_name))
+                return preview_window(frames, model, request.settings, index=position,
+                                      correction=correction), model
             if request.frame_path is not None:
                 frame = read_frame(request.frame_path, request.index)
             else:
                 frame = _layer_frame(request.layer_data, request.index, request.layer_name)
-            dark = None if request.dark_path is None else read_image(request.dark_path)
-            correction = FrameCorrection.build(dark_yx=dark, binning=request.binning,
-                                               name_dark=str(request.dark_path))
             return preview_frame(frame, model, request.settings, correction=correction), model
         except VolreconError as exc:
             return _Failure(str(exc))
@@ -210,7 +304,7 @@ class PreviewWidget(Container[Widget]):
             self._message.value = str(exc)
             return None
         self._run.enabled = False
-        self._message.value = f"reconstructing ({request.settings.label()}) …"
+        self._message.value = f"reconstructing ({_label(request.settings)}) …"
         return self.job.start(self._compute, request, on_result=self._show,
                               on_finished=self._done)
 
@@ -228,7 +322,8 @@ class PreviewWidget(Container[Widget]):
         high = float(result.volume_zyx.max()) or 1.0
         spread = float(np.abs(result.residual_yx).max()) or 1.0
         info = result.info
-        metadata = {"volrecon_preview": {"settings": result.settings.label(),
+        label = _label(result.settings)
+        metadata = {"volrecon_preview": {"settings": label,
                                          "iterations": info.iterations,
                                          "residual": info.residual,
                                          "objective": info.objective,
@@ -237,7 +332,7 @@ class PreviewWidget(Container[Widget]):
             if layer in self._viewer.layers:
                 layer.visible = bool(self._grid.value)
         volume = self._viewer.add_image(
-            result.volume_zyx, name=f"preview {n}: {result.settings.label()}",
+            result.volume_zyx, name=f"preview {n}: {label}",
             scale=(g.depth_step_um, g.pixel_size_um, g.pixel_size_um),
             translate=(g.depth_start_um, 0.0, 0.0), axis_labels=("z", "y", "x"),
             units=("micrometer",) * 3, contrast_limits=(0.0, high), colormap=VOLUME_COLORMAP,

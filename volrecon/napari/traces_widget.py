@@ -37,7 +37,39 @@ from volrecon.napari.traces import delta_f_over_f, region_means, write_traces_cs
 if TYPE_CHECKING:
     import napari
 
-__all__ = ["TimeTracesWidget", "Traces"]
+__all__ = ["TimeTracesWidget", "Traces", "trace_noise"]
+
+#: 1 / Φ⁻¹(3/4): turns a median absolute deviation into a Gaussian standard deviation.
+MAD_TO_SIGMA = 1.482602218505602
+
+
+def trace_noise(values_tr: np.ndarray) -> np.ndarray:
+    """Frame-to-frame noise of each trace: ``1.4826 · MAD(x_t − x_{t−1}) / √2``.
+
+    For a trace ``x_t = s_t + n_t`` whose signal changes little between frames, the first
+    difference is ``n_t − n_{t−1}`` (standard deviation ``√2 σ``), and the median absolute
+    deviation ignores the few frames where the signal jumps. Frames not reconstructed yet
+    (NaN) are skipped.
+
+    Parameters
+    ----------
+    values_tr : ndarray of shape (T, R)
+        Traces, one per column.
+
+    Returns
+    -------
+    ndarray of shape (R,), float64
+        ``σ`` per trace, in the traces' units; NaN with fewer than 3 finite frames.
+    """
+    values = np.asarray(values_tr, dtype=np.float64)
+    out = np.full(values.shape[1], np.nan)
+    for r in range(values.shape[1]):
+        column = values[:, r]
+        steps = np.diff(column[np.isfinite(column)])
+        if steps.size >= 2:
+            deviation = np.median(np.abs(steps - np.median(steps)))
+            out[r] = MAD_TO_SIGMA * float(deviation) / np.sqrt(2.0)
+    return out
 
 
 @dataclass(frozen=True, eq=False)
@@ -123,6 +155,8 @@ class TimeTracesWidget(Container[Widget]):
             event.connect(self._refresh_choices)
         self.job = BackgroundJob(self.native)
         self.traces: Traces | None = None
+        #: Noise readout of the traces on the plot (:func:`trace_noise`), one per region.
+        self.noise: np.ndarray | None = None
 
     # ----------------------------------------------------------------------------- inputs
     def _image_choices(self, _widget: Any = None) -> list[str]:
@@ -190,15 +224,19 @@ class TimeTracesWidget(Container[Widget]):
             plot.draw()
             return
         ax = plot.axes[0]
-        for name, column in zip(traces.names, values.T, strict=True):
-            ax.plot(traces.time_s, column, label=name, linewidth=1.2)
+        self.noise = trace_noise(values)
+        for name, column, sigma in zip(traces.names, values.T, self.noise, strict=True):
+            ax.plot(traces.time_s, column, label=f"{name} (noise {sigma:.3g})", linewidth=1.2)
         ax.set_xlabel("time (s)", fontsize=8)
         ax.set_ylabel("ΔF/F" if kind == "dF/F" else "mean intensity", fontsize=8)
         if len(traces.names) <= 10:
             ax.legend(fontsize=7, loc="best")
         plot.draw()
+        readout = ", ".join(f"{name} {sigma:.3g}"
+                            for name, sigma in zip(traces.names, self.noise, strict=True))
         self._message.value = (f"{len(traces.names)} regions of '{traces.image_name}', "
-                               f"{len(traces.time_s)} frames")
+                               f"{len(traces.time_s)} frames; noise (robust σ of the "
+                               f"frame-to-frame change / √2): {readout}")
 
     def export(self, _value: Any = None) -> Path | None:
         """Write the plotted traces to the chosen CSV file; returns its path (None on error)."""

@@ -78,6 +78,11 @@ CRITERIA = {
                  "volume to the grid neighbours; reported, and a steep spot is flagged",
     "reference": "correlation with the reference volume after registration (both blurred by "
                  "a Gaussian of 1 voxel); the highest mean wins",
+    "temporal": "every other frame of a run held out: the even frames solved as one window "
+                "at half the weight (exactly the full window without the odd frames' data), "
+                "each odd frame predicted by A of its neighbours' midpoint minus its noise; "
+                "among weights within the discrepancy limit, the smallest within one "
+                "standard error of the lowest error (Breiman et al. 1984)",
 }
 #: Refuse cells whose discrepancy ratio exceeds max(1, smallest ratio) by more than this.
 DISCREPANCY_MARGIN = 0.05

@@ -3,8 +3,9 @@
 ``summary.txt`` and ``tune.json`` are always written; with matplotlib (the ``report``
 extra) also ``sweep.png`` (maximum projections along z of every setting on one frame, the
 chosen cell framed), ``scores.png`` (the criteria against tv, one curve per l1),
-``iterations.png`` (distance from the converged result against the iteration count) and
-``noise.png`` (the photon-transfer curve and its fit).
+``iterations.png`` (distance from the converged result against the iteration count),
+``noise.png`` (the photon-transfer curve and its fit) and, when ``temporal_weight`` was
+swept, ``temporal.png`` (both criteria against the weight).
 """
 
 from __future__ import annotations
@@ -23,6 +24,7 @@ if TYPE_CHECKING:
     from collections.abc import Callable
 
     from volrecon.tune.sweep import SweepCell
+    from volrecon.tune.temporal import TemporalSweep
     from volrecon.tune.tune import TuneResult
 
 __all__ = ["report_dict", "summary_text", "write_report"]
@@ -40,6 +42,20 @@ def _cell_dict(cell: SweepCell) -> dict[str, Any]:
         "reference_correlation": None if cell.reference is None else list(cell.reference),
         "stability": None if math.isnan(cell.stability) else cell.stability,
         "seconds": cell.seconds,
+    }
+
+
+def _temporal_dict(sweep: TemporalSweep | None) -> dict[str, Any] | None:
+    if sweep is None:
+        return None
+    return {
+        "chosen": sweep.weight, "lowest_error_weight": sweep.cells[sweep.best_index].weight,
+        "unit_operator_norm_squared": sweep.unit, "discrepancy_limit": sweep.discrepancy_limit,
+        "run_frames": list(sweep.run_frames), "run_length": sweep.run_length,
+        "criterion": CRITERIA["temporal"],
+        "cells": [{"weight": c.weight, "weight_units": c.weight_units, "stage": c.stage,
+                   "discrepancy": c.discrepancy, "prediction_errors": list(c.prediction_errors),
+                   "seconds": c.seconds} for c in sweep.cells],
     }
 
 
@@ -80,6 +96,7 @@ def report_dict(result: TuneResult) -> dict[str, Any]:
         "at_chosen_iterations": {"chosen": _cell_dict(result.chosen_check),
                                  "unregularised": _cell_dict(result.baseline_check)},
         "reference": result.reference_path,
+        "temporal": _temporal_dict(result.temporal),
         "seconds": result.seconds,
     }
 
@@ -130,6 +147,7 @@ def summary_text(result: TuneResult) -> str:
                   f"  without the reference the choice would be tv = {no_truth.tv:.3g}, "
                   f"l1 = {no_truth.l1:.3g} (reference correlation "
                   f"{no_truth.mean_reference:.3f})"]
+    lines += _temporal_lines(result.temporal)
     lines.append(
         f"iterations: {check.chosen} is the smallest count within {check.tolerance:g} "
         f"(relative, blurred) of {check.reference_iterations} iterations per frame, on warm "
@@ -148,6 +166,23 @@ def summary_text(result: TuneResult) -> str:
     lines.append(line)
     lines.append(f"time: {result.seconds:.1f} s")
     return "\n".join(lines) + "\n"
+
+
+def _temporal_lines(sweep: TemporalSweep | None) -> list[str]:
+    if sweep is None:
+        return []
+    lines = [f"temporal_weight: {sweep.weight:g} ({sweep.chosen.weight_units:.3g} |A|^2, |A|^2 = "
+             f"{sweep.unit:.4g}) on runs of {sweep.run_length} frames from video frames "
+             f"{', '.join(map(str, sweep.run_frames))}",
+             f"  {CRITERIA['temporal']}",
+             "  weight (|A|^2)   discrepancy   held-out error / pixel"]
+    for k, c in enumerate(sweep.cells):
+        mark = " <- chosen" if k == sweep.index else (" (lowest error)"
+                                                       if k == sweep.best_index else "")
+        refused = "" if c.discrepancy <= sweep.discrepancy_limit else " refused"
+        lines.append(f"  {c.weight_units:14.3g}   {c.discrepancy:11.3f}   "
+                     f"{c.mean_prediction_error:.4g}{refused}{mark}")
+    return lines
 
 
 def write_report(result: TuneResult, directory: str | Path) -> list[Path]:
@@ -302,7 +337,34 @@ def _plots(result: TuneResult, out: Path) -> list[Path]:
     ax.legend(fontsize=7)
     fig.tight_layout()
     files.append(_save(fig, out / "noise.png"))
+    if result.temporal is not None:
+        files.append(_temporal_plot(result.temporal, out / "temporal.png"))
     return files
+
+
+def _temporal_plot(sweep: TemporalSweep, path: Path) -> Path:
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(7.2, 3.4))
+    FigureCanvasAgg(fig)
+    axes = fig.subplots(1, 2)
+    x = [c.weight_units for c in sweep.cells]
+    smallest = min((w for w in x if w > 0), default=1.0)
+    for ax, name, y in ((axes[0], "discrepancy ρ (kept frames)",
+                         [c.discrepancy for c in sweep.cells]),
+                        (axes[1], "held-out error / pixel (odd frames)",
+                         [c.mean_prediction_error for c in sweep.cells])):
+        ax.plot(x, y, "o-", ms=3)
+        ax.plot([x[sweep.index]], [y[sweep.index]], "s", ms=9, mfc="none",
+                mec=_CHOSEN_COLOUR, mew=2, label="chosen")
+        ax.set_xscale("symlog", linthresh=smallest)
+        ax.set_xlabel("temporal_weight (units of |A|²)")
+        ax.set_title(name, fontsize=9)
+    axes[0].axhline(sweep.discrepancy_limit, color=_CHOSEN_COLOUR, lw=0.8, ls=":")
+    axes[1].legend(fontsize=7)
+    fig.tight_layout()
+    return _save(fig, path)
 
 
 def _save(fig: Any, path: Path) -> Path:

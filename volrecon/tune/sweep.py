@@ -21,7 +21,9 @@ The coarse grid is ``{0, 0.1, 1} u`` for tv and ``{0, 1, 10} u`` for l1 (zero in
 "no regularisation" always competes; 0.1 u reaches below 1e-3 of a typical frame level).
 The fine stage adds the half-decade neighbours (factor √10) of the best coarse cell,
 extending the grid outwards when the best cell lies on its edge, so the final step between
-settings is a factor of about 3.
+settings is a factor of about 3. When the best cell still lies on the upper edge of a weight
+after the fine stage, :func:`volrecon.tune.tune_job` warns (one line naming the weight) and
+widens once more; a second warning says when even that did not reach past the best.
 """
 
 from __future__ import annotations

@@ -12,9 +12,11 @@ Order of work (nothing is written; see :func:`volrecon.tune.write_tuned_job` and
 4. a coarse tv × l1 grid, then a fine one around its best cell, is reconstructed on every
    site in parallel through dask (:mod:`volrecon.tune.sweep`, :mod:`volrecon.tune.execute`)
    and scored (:mod:`volrecon.tune.criteria`);
-5. for the chosen weights, the iteration count is the smallest within a tolerance of the
+5. with ``temporal_window > 1``, ``temporal_weight`` is swept at the chosen tv and l1 on
+   runs of consecutive frames, every other frame held out (:mod:`volrecon.tune.temporal`);
+6. for the chosen weights, the iteration count is the smallest within a tolerance of the
    converged warm-start chain (:mod:`volrecon.tune.iterations`);
-6. the chosen weights and ``tv = l1 = 0`` are both reconstructed at that count and scored
+7. the chosen weights and ``tv = l1 = 0`` are both reconstructed at that count and scored
    by the same rule: the sweep ran fewer iterations, where stopping early regularises too,
    so weights that no longer beat ``tv = l1 = 0`` at the job's count are dropped.
 """
@@ -26,13 +28,14 @@ import logging
 import math
 import os
 import time
+import warnings
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from volrecon.errors import ConfigError, DataError, ShapeError
+from volrecon.errors import ConfigError, DataError, ShapeError, VolreconWarning
 from volrecon.tune.criteria import Choice, choose_cell, stabilities
 from volrecon.tune.execute import run_calls
 from volrecon.tune.iterations import IterationCheck, candidate_counts, chain_error
@@ -43,10 +46,12 @@ from volrecon.tune.solve import SiteSolve, solve_chain, solve_site
 from volrecon.tune.sweep import (
     COARSE_L1_UNITS,
     COARSE_TV_UNITS,
+    FINE_STEP,
     SweepCell,
     fine_grid,
     weight_unit,
 )
+from volrecon.tune.temporal import TemporalSweep, read_runs, run_length, sweep_temporal_weight
 
 if TYPE_CHECKING:
     from volrecon.models.base import Geometry, PSFModel
@@ -101,6 +106,8 @@ class TuneResult:
         Wall-clock time of the run.
     geometry : Geometry
         Sampling of the model's volume grid (for display).
+    temporal : TemporalSweep or None
+        The temporal-weight sweep (None when the job's ``temporal_window`` is 1).
     """
 
     job: JobConfig
@@ -118,6 +125,7 @@ class TuneResult:
     reference_path: str | None
     seconds: float
     geometry: Geometry
+    temporal: TemporalSweep | None = field(default=None, repr=False)
 
     @property
     def chosen(self) -> SweepCell:
@@ -133,6 +141,11 @@ class TuneResult:
     def l1(self) -> float:
         """Chosen l1 weight, rounded to 3 significant digits (as written to the job)."""
         return _round(self.chosen.l1)
+
+    @property
+    def temporal_weight(self) -> float | None:
+        """Chosen temporal weight (as written to the job), None without a temporal sweep."""
+        return None if self.temporal is None else self.temporal.weight
 
     @property
     def iteration_count(self) -> int:
@@ -238,7 +251,7 @@ def tune_job(job: JobConfig | str | os.PathLike[str], *, frames: Sequence[int] |
              tolerance: float = DEFAULT_TOLERANCE,
              gain_adu_per_electron: float | None = None, client: Any = None,
              progress: Callable[[str], None] | None = None) -> TuneResult:
-    """Choose ``tv``, ``l1`` and ``iterations`` for a job from a few of its frames.
+    """Choose ``tv``, ``l1``, ``iterations`` (and ``temporal_weight``) from a few frames.
 
     Parameters
     ----------
@@ -346,12 +359,34 @@ def tune_job(job: JobConfig | str | os.PathLike[str], *, frames: Sequence[int] |
         f"l1 = {best.l1_units:.3g} u")
     cells += _cells(model, sites, noise, unit, fine, sweep_iterations, call, job, 1,
                     reference_volume, client)
+    best = cells[_choose(cells, reference_volume is not None).index]
+    edges = _upper_edges(cells, best, unit, widened=False)
+    if edges:
+        wider = fine_grid(best.tv_units, best.l1_units, [(c.tv_units, c.l1_units) for c in cells])
+        say(f"widening the sweep once more: {len(wider)} settings past the {edges} edge")
+        cells += _cells(model, sites, noise, unit, wider, sweep_iterations, call, job, 1,
+                        reference_volume, client)
+        _upper_edges(cells, cells[_choose(cells, reference_volume is not None).index], unit,
+                     widened=True)
     stable = stabilities([(c.tv_units, c.l1_units) for c in cells], [c.volumes for c in cells])
     cells = [_replace_stability(c, s) for c, s in zip(cells, stable, strict=True)]
     choice = _choose(cells, reference_volume is not None)
     chosen = cells[choice.index]
     say(f"chosen by {choice.criterion}: tv = {chosen.tv:.3g} ({chosen.tv_units:.3g} u), "
         f"l1 = {chosen.l1:.3g} ({chosen.l1_units:.3g} u)")
+    temporal = None
+    if call.temporal_window > 1:
+        length = run_length(call.temporal_window, source.n_frames)
+        starts, runs = read_runs(source, correction, site_frames, length)
+        say(f"temporal sweep: runs of {length} frames from video frames "
+            f"{', '.join(map(str, starts))}, every other frame held out")
+        temporal = sweep_temporal_weight(model, runs, noise, tv=chosen.tv, l1=chosen.l1,
+                                         iterations=sweep_iterations, settings=call,
+                                         compute=job.compute, run_frames=starts,
+                                         client=client)
+        call = dataclasses.replace(call, temporal_weight=temporal.weight)
+        say(f"chosen temporal_weight = {temporal.weight:.3g} "
+            f"({temporal.chosen.weight_units:.3g} |A|^2)")
 
     # Iterations on as many sites as there are workers (the chains run in parallel).
     order = sorted(range(len(sites)), key=lambda i: abs(i - (len(sites) - 1) / 2))
@@ -398,7 +433,28 @@ def tune_job(job: JobConfig | str | os.PathLike[str], *, frames: Sequence[int] |
                       index=index, confirmation=confirmation, iterations=check,
                       chosen_check=final[0], baseline_check=final[1],
                       reference_path=reference_name, seconds=time.perf_counter() - started,
-                      geometry=model.geometry)
+                      geometry=model.geometry, temporal=temporal)
+
+
+def _upper_edges(cells: Sequence[SweepCell], best: SweepCell, unit: float, *, widened: bool
+                 ) -> str:
+    """Warn (one line per weight) when `best` lies on the upper edge of the computed grid.
+
+    Returns the weights concerned ("tv", "l1", "tv and l1" or ""). Zero is a true lower
+    bound of both weights, so only the upper edge counts.
+    """
+    names = []
+    for name, value in (("tv", best.tv_units), ("l1", best.l1_units)):
+        values = [c.tv_units if name == "tv" else c.l1_units for c in cells]
+        if value > 0 and value == max(values):
+            names.append(name)
+            what = ("is still on the upper edge of the sweep after widening once; the best "
+                    "value may lie beyond it: check the report and the frames' noise"
+                    if widened else "lies on the upper edge of the sweep; widening it once "
+                    f"more to {value * FINE_STEP:.3g} u")
+            warnings.warn(f"tune: the best {name} = {value * unit:.3g} ({value:.3g} u) {what}",
+                          VolreconWarning, stacklevel=3)
+    return " and ".join(names)
 
 
 def _replace_stability(cell: SweepCell, value: float) -> SweepCell:

@@ -87,7 +87,7 @@ def _run_calibrate(args: argparse.Namespace) -> int:
 
 
 def _run_calibrate_lenslet(args: argparse.Namespace) -> int:
-    from volrecon.calibrate import calibrate_lenslet_file
+    from volrecon.calibrate import calibrate_lenslet_file, default_report_dir
     from volrecon.errors import ConfigError
 
     ignored = [name for name, value in (("--wavelength", args.wavelength), ("--crop", args.crop),
@@ -95,11 +95,13 @@ def _run_calibrate_lenslet(args: argparse.Namespace) -> int:
                if value is not None] + (["--bin"] if args.bin != 1 else [])
     if ignored:
         raise ConfigError(f"--lenslet-pitch does not take {', '.join(ignored)}; drop them")
-    model = calibrate_lenslet_file(
+    calibrate_lenslet_file(
         args.stack, args.out, lenslet_pitch=args.lenslet_pitch, depth_step_um=args.depth_step,
         pixel_size_um=args.pixel_size, depth_start_um=args.depth_start, dark_path=args.dark,
         normalization="planes" if args.normalise_planes else "stack")
-    print(f"{model!r}\nmodel written to {args.out}")
+    report = default_report_dir(args.out)
+    print(f"{(report / 'summary.txt').read_text()}model written to {args.out}; report in "
+          f"{report}")
     return 0
 
 

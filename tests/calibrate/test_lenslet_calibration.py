@@ -10,7 +10,7 @@ from scipy.ndimage import gaussian_filter
 from volrecon.calibrate import calibrate_lenslet_stack
 from volrecon.cli import main
 from volrecon.errors import DataError, ShapeError
-from volrecon.models import LensletPSF, PSFModel
+from volrecon.models import Geometry, LensletPSF, PSFModel
 
 
 def _true_stack(rng, nz=3, n=2, ny=24, nx=24):
@@ -108,3 +108,83 @@ def test_simulated_scan_calibrates_to_its_true_responses(tmp_path):
                 assert r > 0.95, (z, i, j, r)
     throughput = np.asarray(model.calibration["throughput"])
     assert throughput.shape == (16, 3) and throughput.min() > 0.9
+
+
+# Width growth per depth plane for each sub-position (i, j): 1.0 never decorrelates.
+_GROWTH = np.array([[1.5, 1.8], [1.4, 1.0]])
+
+
+def _gaussian_stack(nz=5, n=2, size=160):
+    """Unit-sum Gaussian spots on each sub-position, width 1.4 px × growth**z (at most
+    14.7 px: over five widths inside the frame, so the spot is not truncated)."""
+    y0 = n * ((size // 2) // n)
+    yy, xx = np.mgrid[:size, :size]
+    psf = np.zeros((nz, n, n, size, size))
+    widths = 1.4 * _GROWTH[None] ** np.arange(nz)[:, None, None]  # (Z, N, N)
+    for z in range(nz):
+        for i in range(n):
+            for j in range(n):
+                r2 = (yy - y0 - i) ** 2 + (xx - y0 - j) ** 2
+                spot = np.exp(-r2 / (2 * widths[z, i, j] ** 2))
+                psf[z, i, j] = spot / spot.sum()
+    return psf, widths
+
+
+def test_report_depth_correlation_matches_the_gaussian_closed_form():
+    from volrecon.calibrate.lenslet_report import lenslet_report
+    from volrecon.calibrate.metrics import axial_resolution
+
+    psf, widths = _gaussian_stack()
+    nz, n, _, size, _ = psf.shape
+    model = LensletPSF(psf, Geometry(2.0, 0.5))
+    report = lenslet_report(model)
+    assert report.depth_ncc.shape == (n, n, nz, nz)
+    pixels = size * size
+    for i in range(n):
+        for j in range(n):
+            s = widths[:, i, j]
+            # Textbook Gaussian integral: two unit-sum 2-D Gaussians of widths s1, s2 on one
+            # centre overlap by 1 / (2π(s1² + s2²)), so their NCC is 2 s1 s2 / (s1² + s2²).
+            # depth_correlation first subtracts each plane's mean (1 / pixels), which takes
+            # 1 / pixels off every inner product. The sampled sums equal the integrals to
+            # ~exp(-2π² σ²) with σ² = s1² s2² / (s1² + s2²) ≥ 0.98 here (Poisson summation),
+            # far below the ~1e-6 of the float32 transforms.
+            overlap = 1.0 / (2 * np.pi * (s[:, None] ** 2 + s[None, :] ** 2)) - 1.0 / pixels
+            expected = overlap / np.sqrt(np.outer(np.diag(overlap), np.diag(overlap)))
+            np.testing.assert_allclose(report.depth_ncc[i, j], expected, atol=1e-5)
+            np.testing.assert_allclose(report.neighbour_ncc[i, j],
+                                       np.diag(expected, k=1), atol=1e-5)
+            # The rule of the other kinds' report applied to the closed-form correlations.
+            _, median = axial_resolution(expected, 2.0)
+            if median is None:
+                assert np.isnan(report.distinguishable_planes[i, j])
+            else:
+                assert report.distinguishable_planes[i, j] == pytest.approx(
+                    max(1.0, nz * 2.0 / median), rel=1e-4)
+    # Faster width growth separates more depths; constant width none.
+    planes = report.distinguishable_planes
+    assert planes[0, 1] > planes[0, 0] > planes[1, 0] and np.isnan(planes[1, 1])
+
+
+def test_cli_writes_the_lenslet_report(tmp_path, capsys):
+    import json
+
+    psf, _ = _gaussian_stack(nz=3)
+    scan = tmp_path / "lf.tif"
+    tifffile.imwrite(scan, (psf * 2e5 + 100).astype(np.uint16), photometric="minisblack")
+    out = tmp_path / "lf.zarr"
+    assert main(["calibrate", str(scan), "--lenslet-pitch", "2", "--depth-step", "2",
+                 "--pixel-size", "0.5", "--out", str(out)]) == 0
+    text = capsys.readouterr().out
+    assert "distinguishable depths" in text and "lf.report" in text
+    data = json.loads((tmp_path / "lf.report" / "report.json").read_text())
+    assert data["model_kind"] == "lenslet" and data["lenslet_pitch"] == 2
+    assert np.asarray(data["depth_ncc"]).shape == (2, 2, 3, 3)
+    assert data["calibration"]["source"] == str(scan)
+    assert (tmp_path / "lf.report" / "summary.txt").read_text().startswith("PSF model: lenslet")
+    # A folder in the report's place that is not a report is refused in one line.
+    (tmp_path / "other.report").mkdir()
+    assert main(["calibrate", str(scan), "--lenslet-pitch", "2", "--depth-step", "2",
+                 "--pixel-size", "0.5", "--out", str(tmp_path / "other.zarr")]) == 2
+    err = capsys.readouterr().err
+    assert "not a calibration report" in err and len(err.strip().splitlines()) == 1

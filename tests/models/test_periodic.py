@@ -13,6 +13,7 @@ from scipy.signal import fftconvolve
 import volrecon
 from volrecon.errors import ConfigError, DataError, ModelStoreError, ShapeError
 from volrecon.models import DepthConvolutionPSF, Geometry, LensletPSF, PSFModel
+from volrecon.models.testing import dot_test
 
 GEOMETRY = Geometry(2.0, 0.5, -1.0)
 
@@ -52,6 +53,30 @@ def test_forward_matches_scipy_per_sub_position(rng, shape, dtype, rtol):
     # rounding; float32 to its precision times the FFT depth, as for the other kinds.
     expected = _reference_forward(volume, psf)
     assert np.linalg.norm(got - expected) / np.linalg.norm(expected) < rtol
+
+
+@pytest.mark.parametrize("reach_yx", [((-2, 1), (0, 3)), ((0, 0), (-1, 0)), ((-4, 4), (-4, 4))])
+def test_compact_responses_use_a_smaller_lattice_grid_and_stay_exact(rng, reach_yx):
+    nz, n, ny, nx = 2, 3, 31, 26
+    y0, x0 = n * ((ny // 2) // n), n * ((nx // 2) // n)
+    (ya, yb), (xa, xb) = reach_yx
+    psf = np.zeros((nz, n, n, ny, nx))
+    # Responses lit only from lenslet ya to yb (xa to xb) around the central block.
+    window = (slice(y0 + n * ya, y0 + n * (yb + 1)), slice(x0 + n * xa, x0 + n * (xb + 1)))
+    psf[..., window[0], window[1]] = rng.random(psf[..., window[0], window[1]].shape)
+    volume = rng.random((nz, ny, nx))
+    model = LensletPSF(psf, GEOMETRY, dtype=np.float64)
+    qy, qx = model.lattice_shape
+    # Known truth: a kernel reaching D lenslets from its centre needs Q + D coarse samples.
+    assert model.lattice_padded_shape[0] >= qy + max(-ya, yb)
+    assert model.lattice_padded_shape[1] >= qx + max(-xa, xb)
+    if max(-ya, yb) < 4:
+        assert model.lattice_padded_shape[0] < 2 * qy - 1
+    # Reference: scipy.signal.fftconvolve per sub-position; float64 agrees to rounding.
+    expected = _reference_forward(volume, psf)
+    got = model.forward(volume)
+    assert np.linalg.norm(got - expected) / np.linalg.norm(expected) < 1e-10
+    dot_test(model, rng=rng, rtol=1e-10)
 
 
 def test_point_responses_repeat_with_the_pitch(rng):

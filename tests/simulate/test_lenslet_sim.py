@@ -214,7 +214,8 @@ def test_lenslet_demo_end_to_end(tmp_path, capsys):
     argv = ["demo", str(out), "--optics", "lenslet", "--frames", "4", "--no-progress"]
     assert main(argv) == 0
     text = capsys.readouterr().out
-    assert "4 frames reconstructed" in text and "calibration report" not in text
+    assert "4 frames reconstructed" in text and "calibration report" in text
+    assert "distinguishable depths" in (out / "psf-model.report" / "summary.txt").read_text()
     correlation = float(re.search(r"correlation with the truth .*: ([0-9.]+)", text).group(1))
     # Known synthetic truth: the simulated beads and fibre. The 8-frame run reaches 0.91;
     # the adjoint of the same model about 0.45.
@@ -228,3 +229,87 @@ def test_lenslet_demo_end_to_end(tmp_path, capsys):
     assert main(["demo", str(out), "--frames", "4", "--no-progress"]) == 2
     err = capsys.readouterr().err
     assert "made with --optics lenslet" in err and len(err.strip().splitlines()) == 1
+
+
+def test_four_frame_job_matches_plain_fista_per_frame(rng, tmp_path, small_stack):
+    import tomli_w
+    import zarr
+
+    from volrecon.cli import main
+
+    model = small_stack.to_model()
+    model.save(tmp_path / "model")
+    # Four frames of eight beads drifting one voxel per frame across x, with shot noise.
+    start = np.stack([rng.integers(0, 5, 8), rng.integers(8, 28, 8), rng.integers(8, 24, 8)])
+    brightness = 1e5 * (0.5 + rng.random(8))
+    truths = np.zeros((4, *model.shape_in), np.float32)
+    for t in range(4):
+        np.add.at(truths[t], (start[0], start[1], start[2] + t), brightness)
+    frames = np.stack([rng.poisson(np.asarray(model.forward(v)) + 2.0) - 2.0
+                       for v in truths]).astype(np.float32)
+    tifffile.imwrite(tmp_path / "raw.tif", frames, photometric="minisblack")
+    solver = {"method": "fista", "iterations": 60}
+    (tmp_path / "job.toml").write_text(tomli_w.dumps({
+        "model": {"path": "model"}, "video": {"path": "raw.tif"}, "solver": solver,
+        "output": {"path": "out.zarr", "time_interval_s": 0.1},
+        "compute": {"frames_per_task": 4}}))
+    assert main(["run", str(tmp_path / "job.toml"), "--no-progress"]) == 0
+    volumes = zarr.open_group(tmp_path / "out.zarr", mode="r")["0"][:]
+    assert volumes.shape == truths.shape
+    job = np.mean([blurred_correlation(v, t) for v, t in zip(volumes, truths, strict=True)])
+    plain = np.mean([blurred_correlation(volrecon.reconstruct(f, model, **solver), t)
+                     for f, t in zip(frames, truths, strict=True)])
+    # Known truth: the beads; reference: plain FISTA per frame at the same iterations (the
+    # issue's target: the job reaches at least 0.9 of it). Measured: job 0.935, plain 0.940;
+    # plain above 0.7 shows the reference itself resolves the beads.
+    assert job >= 0.9 * plain, (job, plain)
+    assert plain > 0.7, plain
+
+
+def test_tune_on_a_lenslet_job(rng, tmp_path, small_stack, capsys):
+    import json
+    import tomllib
+
+    import tomli_w
+    import zarr
+
+    from volrecon.cli import main
+
+    model = small_stack.to_model()
+    model.save(tmp_path / "model")
+    # Six frames of the same six beads with shot noise on a flat background of 5 photons,
+    # recorded in photon counts (gain 1 count per electron).
+    truth = np.zeros(model.shape_in, np.float32)
+    np.add.at(truth, (rng.integers(0, 5, 6), rng.integers(8, 28, 6), rng.integers(8, 28, 6)),
+              1e4)
+    photons = np.asarray(model.forward(truth)) + 5.0
+    frames = rng.poisson(photons, size=(6, *photons.shape)).astype(np.float32)
+    tifffile.imwrite(tmp_path / "raw.tif", frames, photometric="minisblack")
+    job = {"model": {"path": "model"}, "video": {"path": "raw.tif"},
+           "solver": {"method": "fista", "iterations": 20},
+           "output": {"path": "out.zarr", "time_interval_s": 0.1}}
+    (tmp_path / "job.toml").write_text(tomli_w.dumps(job))
+    argv = ["tune", str(tmp_path / "job.toml"), "--sites", "2", "--sweep-iterations", "10",
+            "--max-iterations", "40", "--reference-iterations", "60", "--gain", "1", "--quiet"]
+    assert main(argv) == 0
+    tuned = tomllib.loads((tmp_path / "job.tuned.toml").read_text())
+    assert tuned["solver"]["method"] == "fista"
+    assert tuned["solver"]["iterations"] in (10, 20, 40)
+    report = json.loads((tmp_path / "job.tuned.report" / "tune.json").read_text())
+    assert report["method"] == "fista" and report["chosen"]["iterations"] == \
+        tuned["solver"]["iterations"]
+    # The tuned job runs and, against the known synthetic truth (the beads), does at least
+    # as well as the untuned settings (plain FISTA per frame at the job's 20 iterations).
+    assert main(["run", str(tmp_path / "job.tuned.toml"), "--no-progress"]) == 0
+    volumes = zarr.open_group(tmp_path / "out.zarr", mode="r")["0"][:]
+    score = np.mean([blurred_correlation(v, truth) for v in volumes])
+    untuned = np.mean([blurred_correlation(
+        volrecon.reconstruct(f, model, method="fista", iterations=20), truth) for f in frames])
+    assert score >= untuned and score > 0.7, (score, untuned)
+    capsys.readouterr()
+    # An ADMM job on the same model is refused in one line naming the usable methods.
+    job["solver"]["method"] = "admm"
+    (tmp_path / "admm.toml").write_text(tomli_w.dumps(job))
+    assert main(["tune", str(tmp_path / "admm.toml"), "--quiet"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and '"fista" or "rl"' in err

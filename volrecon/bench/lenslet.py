@@ -5,8 +5,10 @@ few sizes (random non-negative responses within ±2 lenslets of the point: the c
 depend on the values) and prints, per size:
 
 - ``forward + adjoint`` against the coarse transforms they cannot avoid: Z·N² forward and
-  N² inverse real FFTs of the lattice grid for the forward, N² forward and Z·N² inverse for
-  the adjoint (target: at most 2×);
+  N² inverse real FFTs of the model's lattice grid (:attr:`LensletPSF.lattice_padded_shape`,
+  sized to the responses' reach) for the forward, N² forward and Z·N² inverse for the
+  adjoint (target: at most 2×). The rest is the per-frequency products with the Z·N² × N²
+  spectrum matrices, bound by reading them from memory: their share grows as N²;
 - the same against the FFT bound of a shift-invariant model of the same volume (Z forward +
   Z inverse real FFTs of the full padded grid, :func:`volrecon.bench.iteration.fft_lower_bound`);
 - FISTA and RL seconds per iteration (long minus short solve) against that FFT bound.

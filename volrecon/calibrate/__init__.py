@@ -30,6 +30,7 @@ from volrecon.calibrate.compression import (
     stack_singular_values,
 )
 from volrecon.calibrate.lenslet import calibrate_lenslet_file, calibrate_lenslet_stack
+from volrecon.calibrate.lenslet_report import LensletReport, lenslet_report
 from volrecon.calibrate.metrics import autocorrelation_fwhm, axial_resolution, depth_correlation
 from volrecon.calibrate.options import parse_crop, parse_rank
 from volrecon.calibrate.registration import estimate_shift, shift_image
@@ -42,6 +43,7 @@ __all__ = [
     "CalibrationReport",
     "CleanedStack",
     "DepthFactors",
+    "LensletReport",
     "autocorrelation_fwhm",
     "axial_resolution",
     "bin_pixels",
@@ -56,6 +58,7 @@ __all__ = [
     "depth_correlation",
     "estimate_shift",
     "factor_psf_stack",
+    "lenslet_report",
     "mask_background",
     "parse_crop",
     "parse_rank",

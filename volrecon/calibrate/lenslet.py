@@ -143,9 +143,12 @@ def calibrate_lenslet_file(
     depth_step_um: float,
     pixel_size_um: float,
     dark_path: str | os.PathLike[str] | None = None,
+    report_dir: str | os.PathLike[str] | None = None,
     **options: Any,
 ) -> LensletPSF:
-    """Calibrate a (Z, N, N, Y, X) bead-scan TIFF and write the model store at `out`.
+    """Calibrate a (Z, N, N, Y, X) bead-scan TIFF; write the model store at `out` and its
+    report (:func:`~volrecon.calibrate.lenslet_report.lenslet_report`: ``summary.txt`` and
+    ``report.json``, the depth discrimination of every sub-position).
 
     Parameters
     ----------
@@ -158,6 +161,9 @@ def calibrate_lenslet_file(
         As for :func:`calibrate_lenslet_stack`.
     dark_path : path-like, optional
         TIFF of the camera offset: one frame (Y, X) or several (M, Y, X), averaged.
+    report_dir : path-like, optional
+        Report folder; default ``NAME.report`` beside `out`
+        (:func:`~volrecon.calibrate.default_report_dir`).
     **options
         Any other keyword of :func:`calibrate_lenslet_stack`.
 
@@ -168,17 +174,25 @@ def calibrate_lenslet_file(
     Raises
     ------
     ModelStoreError
-        If `out` exists and is not a model store.
+        If `out` exists and is not a model store, or the report folder exists and is not
+        a calibration report.
     VolreconError
         What reading or :func:`calibrate_lenslet_stack` raises, with the file named.
     """
+    from volrecon.calibrate.calibration import default_report_dir
+    from volrecon.calibrate.lenslet_report import lenslet_report
+    from volrecon.io.files import replacing
     from volrecon.io.tiff import read_tiff_stack
     from volrecon.models.store import save_model
 
     out_path = Path(out)
+    report_path = Path(report_dir) if report_dir is not None else default_report_dir(out_path)
     if out_path.exists() and not (out_path / "zarr.json").is_file():
         raise ModelStoreError(f"{out_path}: exists and is not a volrecon model store; choose "
                               "another --out path")
+    if report_path.exists() and not (report_path / "summary.txt").is_file():
+        raise ModelStoreError(f"{report_path}: exists and is not a calibration report; move "
+                              "it or choose another --out path")
     scan = read_tiff_stack(stack_path, what="bead scan")
     dark = None if dark_path is None else read_tiff_stack(dark_path, what="dark frame")
     try:
@@ -189,5 +203,7 @@ def calibrate_lenslet_file(
     except VolreconError as exc:
         where = dark_path if ("dark frame" in str(exc) and dark_path is not None) else stack_path
         raise type(exc)(f"{where}: {exc}") from exc
-    save_model(model, out_path)
+    with replacing(report_path) as staging:
+        lenslet_report(model).write(staging)
+        save_model(model, out_path)
     return model

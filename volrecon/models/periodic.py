@@ -63,15 +63,29 @@ class LensletPSF(PSFModel):
 
     and the adjoint is the matching sum of correlations,
     ``(Aᵀb)_{z,s}[k] = Σ_r Σ_m g_{z,s,r}[m - k + K] b_r[m]``. Each coarse convolution is
-    circular on a zero-padded grid of ``next_fast_len(2Q - 1)`` per axis (equal to the
-    linear one on the kept window), with real FFTs. ``forward`` costs Z·N² forward and N²
-    inverse coarse transforms, ``adjoint`` N² forward and Z·N² inverse; a coarse transform is
-    about ``1/N²`` of one on the full padded grid, so an application costs about ``Z + 1``
-    full-grid transforms, plus Z·N⁴ coarse spectrum products (as many complex products as
-    Z·N² full-grid ones), done per frequency as (B, N²) × (N², N²) matrix products. The
-    spectra take ``Z·N⁴·G_y·(G_x//2 + 1)`` complex numbers, about 4× the stack. The model
-    is not shift-invariant, so :meth:`transfer_functions` is None and ADMM's exact
-    Fourier-domain volume update does not apply: use FISTA or RL (``reconstruct`` refuses
+    circular on a zero-padded grid of ``G = next_fast_len(Q + D)`` per axis, with real
+    FFTs, where ``D ≤ Q - 1`` is how many lenslets the kernel phases reach from their centre
+    ``K`` (read off the stack's non-zero rows and columns): then no index ``m - k`` of the
+    kept window wraps onto a non-zero tap, so the circular result equals the linear one.
+    Responses confined to a few lenslets (the usual case) make ``G`` close to ``Q`` instead
+    of ``2Q - 1``.
+
+    Cost. ``forward`` takes Z·N² forward and N² inverse coarse transforms, ``adjoint`` N²
+    forward and Z·N² inverse (a coarse transform is about ``1/N²`` of one on the full grid),
+    plus, per coarse frequency ``f``, one product with the ``Z·N² × N²`` matrix ``Ĝ(f)``:
+    ``Ĝ(f)ᵀ @ (Z·N², B)`` forward, ``Ĝ(f) @ (N², B)`` adjoint, all frequencies
+    in one batched BLAS call split over the FFT threads. The matrices are stored once, in
+    that layout, ``Z·N⁴·G_y·(G_x//2 + 1)`` complex numbers (about the size of the stack on
+    the ``G·N`` grid); for one frame the products read them from memory and that reading,
+    not arithmetic, sets their time. It grows as ``N²`` against the transforms' ``log G``,
+    so the products dominate for large pitches. The other exact formulation, ``N²``
+    full-grid convolutions per depth of the volume masked to each sub-lattice, needs the
+    same Z·N⁴ products per coarse frequency (``Z·N²`` per full-grid frequency) and ``N²``
+    times more transform work (Z·N² full-grid transforms), so it is never cheaper and is
+    not offered.
+
+    The model is not shift-invariant, so :meth:`transfer_functions` is None and ADMM's
+    exact Fourier-domain volume update does not apply: use FISTA or RL (``reconstruct`` refuses
     ADMM in one line naming them). Why not an exact ADMM: in the DFT of the fine padded grid
     the model couples each input frequency to its ``N²`` aliases one lattice period apart, so
     per coarse frequency the volume update is a ``Z·N²`` system, diagonal plus ``μ₁ BᴴB``
@@ -123,6 +137,7 @@ class LensletPSF(PSFModel):
         self.lenslet_pitch: int = int(n)
         self.block_origin_yx: tuple[int, int] = origin
         self.calibration: dict[str, Any] = dict(calibration or {})
+        self._grid = self._coarse_grid()
         self._spectra = self._phase_spectra()
 
     # ------------------------------------------------------------------------- lattice
@@ -135,16 +150,29 @@ class LensletPSF(PSFModel):
 
     @property
     def lattice_padded_shape(self) -> tuple[int, int]:
-        """Coarse FFT grid, ``next_fast_len(2Q - 1)`` per axis (``Q``: :attr:`lattice_shape`)."""
+        """Coarse FFT grid: ``next_fast_len(Q + D)`` per axis, ``D`` the reach of the kernel
+        phases from their centre in lenslets (at most ``Q - 1``; see the class Notes)."""
+        return self._grid
+
+    def _coarse_grid(self) -> tuple[int, int]:
+        """The smallest fast grid on which the coarse circular convolutions stay linear."""
         import scipy.fft
 
-        qy, qx = self.lattice_shape
-        return (scipy.fft.next_fast_len(2 * qy - 1, real=True),
-                scipy.fft.next_fast_len(2 * qx - 1, real=True))
+        n = self.lenslet_pitch
+        grid = []
+        for axis, (q, k0) in enumerate(zip(self.lattice_shape, self.block_origin_yx,
+                                           strict=True)):
+            lit = np.flatnonzero(np.any(self.psf != 0, axis=tuple(a for a in range(5)
+                                                                  if a != 3 + axis)))
+            reach = 0 if lit.size == 0 else max(int(lit[-1]) // n - k0 // n,
+                                                k0 // n - int(lit[0]) // n, 0)
+            grid.append(scipy.fft.next_fast_len(q + min(reach, q - 1), real=True))
+        return (grid[0], grid[1])
 
     def _phase_spectra(self) -> Array:
-        """Spectra ``Ĝ`` of the kernel phases, centre at ``K``: (Z, Gy·(Gx//2+1), N², N²),
-        frequency first so that the sums over sub-positions are batched matrix products."""
+        """Spectra ``Ĝ`` of the kernel phases, centre at ``K``: (F, Z·N², N²) with
+        ``F = Gy·(Gx//2+1)``, frequency first and depth with sub-position on one axis, so
+        that each application is one batched matrix product."""
         be = self.backend
         n = self.lenslet_pitch
         nz, ny, nx = self.shape_in
@@ -154,13 +182,13 @@ class LensletPSF(PSFModel):
         padded[..., :ny, :nx] = self.psf
         # [z, i, j, m, ry, l, rx] = psf[z, i, j, ry + N m, rx + N l] → [z, s, r, m, l]
         phases = (padded.reshape(nz, n, n, qy, n, qx, n).transpose(0, 1, 2, 4, 6, 3, 5)
-                  .reshape(nz, n * n, n * n, qy, qx))
-        placed = np.zeros((*phases.shape[:3], *grid), dtype=self.dtype)
+                  .reshape(nz * n * n, n * n, qy, qx))
+        placed = np.zeros((*phases.shape[:2], *grid), dtype=self.dtype)
         placed[..., :qy, :qx] = phases
         k0 = (self.block_origin_yx[0] // n, self.block_origin_yx[1] // n)
         placed = np.roll(placed, (-k0[0], -k0[1]), axis=(-2, -1))
         spectra = be.rfft2(be.asarray(placed), grid)
-        spectra = spectra.reshape(*spectra.shape[:3], -1).transpose(0, 3, 1, 2)
+        spectra = spectra.reshape(*spectra.shape[:2], -1).transpose(2, 0, 1)
         return be.xp.ascontiguousarray(spectra)
 
     def _split(self, planes: Array) -> Array:
@@ -183,20 +211,31 @@ class LensletPSF(PSFModel):
         full = phases.reshape(-1, n, n, qy, qx).transpose(0, 3, 1, 4, 2)
         return full.reshape(-1, qy * n, qx * n)[:, :ny, :nx]
 
+    def _products(self, left: Array, right: Array, out: Array) -> Array:
+        """``out[f] = left[f] @ right[f]`` for every frequency ``f``, the frequencies split
+        over the FFT threads (BLAS releases the GIL; each call is one matrix product)."""
+        be = self.backend
+        if be.device != "cpu":
+            return be.xp.matmul(left, right, out=out)
+        be.run_split(_matmul_range, out.shape[0], left, right, out)
+        return out
+
     # ------------------------------------------------------------------------- application
     def _forward(self, volumes: Array) -> Array:
         be = self.backend
         grid = self.lattice_padded_shape
         batch, pairs = volumes.shape[0], self.lenslet_pitch**2
-        total = be.xp.zeros((self._spectra.shape[1], batch, pairs), dtype=self._spectra.dtype)
-        for z in range(self.n_planes):
-            spectra = be.rfft2(self._split(volumes[:, z]), grid)  # (B, S, Gy, Gxh)
-            # Σ_s Û_{z,s}(f) Ĝ_{z,s,r}(f): per frequency, (B, S) @ (S, R). Frequency-first
-            # and contiguous, so each product runs in BLAS (a strided view falls back to
-            # loops ~100× slower at N = 8).
-            rows = be.xp.ascontiguousarray(spectra.reshape(batch, pairs, -1).transpose(2, 0, 1))
-            total += be.xp.matmul(rows, self._spectra[z])
-        total = be.xp.ascontiguousarray(total.transpose(1, 2, 0))
+        freqs, inputs = self._spectra.shape[:2]
+        spectra = be.rfft2(self._split(volumes).reshape(batch, inputs, *self.lattice_shape),
+                           grid)  # (B, Z·S, Gy, Gxh)
+        # Σ_{z,s} Ĝ_{z,s,r}(f) Û_{z,s}(f): per frequency, (R, Z·S) @ (Z·S, B). A matrix
+        # times columns runs in BLAS at memory speed (the transposed view costs nothing);
+        # rows times a matrix, (B, Z·S) @ (Z·S, R), measured 3-5× slower for one frame.
+        columns = be.xp.ascontiguousarray(
+            spectra.reshape(batch, inputs, freqs).transpose(2, 1, 0))
+        total = self._products(self._spectra.transpose(0, 2, 1), columns,
+                               be.xp.empty((freqs, pairs, batch), dtype=self._spectra.dtype))
+        total = be.xp.ascontiguousarray(total.transpose(2, 1, 0))
         phases = be.irfft2_window(total.reshape(batch, pairs, grid[0], -1), grid,
                                   self.lattice_shape, overwrite=True)
         return be.xp.ascontiguousarray(self._merge(phases))
@@ -207,18 +246,18 @@ class LensletPSF(PSFModel):
         be = self.backend
         grid = self.lattice_padded_shape
         batch, pairs = images.shape[0], self.lenslet_pitch**2
+        freqs, inputs = self._spectra.shape[:2]
         spectrum = be.rfft2(self._split(images), grid)  # (B, R, Gy, Gxh)
         be.xp.conjugate(spectrum, out=spectrum)
         spectrum = be.xp.ascontiguousarray(spectrum.reshape(batch, pairs, -1).transpose(2, 1, 0))
-        out = be.xp.empty((batch, *self.shape_in), dtype=self.dtype)
-        for z in range(self.n_planes):
-            # Σ_r Ĝ_{z,s,r}(f) conj(B̂_r)(f): per frequency, (S, R) @ (R, B).
-            planes = be.xp.matmul(self._spectra[z], spectrum)
-            planes = be.xp.ascontiguousarray(planes.transpose(2, 1, 0))
-            phases = be.irfft2_window(planes.reshape(batch, pairs, grid[0], -1), grid,
-                                      self.lattice_shape, reverse=True, overwrite=True)
-            out[:, z] = self._merge(phases)
-        return out
+        # Σ_r Ĝ_{z,s,r}(f) conj(B̂_r)(f): per frequency, (Z·S, R) @ (R, B).
+        planes = self._products(self._spectra, spectrum,
+                                be.xp.empty((freqs, inputs, batch), dtype=spectrum.dtype))
+        planes = be.xp.ascontiguousarray(planes.transpose(2, 1, 0))
+        phases = be.irfft2_window(planes.reshape(batch * inputs, grid[0], -1), grid,
+                                  self.lattice_shape, reverse=True, overwrite=True)
+        merged = self._merge(phases)  # (B·Z, Y, X)
+        return be.xp.ascontiguousarray(merged).reshape(batch, *self.shape_in)
 
     # ------------------------------------------------------------------------- storage
     def store_arrays(self) -> dict[str, np.ndarray]:
@@ -256,3 +295,7 @@ def _rebuild(psf: np.ndarray, geometry: Geometry, dtype: str, norm: float | None
     model = LensletPSF(psf, geometry, dtype=dtype, calibration=calibration)
     model._seed_norm(norm)
     return model
+
+
+def _matmul_range(left: np.ndarray, right: np.ndarray, out: np.ndarray, lo: int, hi: int) -> None:
+    np.matmul(left[lo:hi], right[lo:hi], out=out[lo:hi])

@@ -26,7 +26,14 @@ from volrecon.errors import (
     StoreLockedError,
     StoreMismatchError,
 )
-from volrecon.pipeline import JobStore, StoreLock, load_job, run_job, store_status
+from volrecon.pipeline import (
+    JobStore,
+    StoreLock,
+    format_status,
+    load_job,
+    run_job,
+    store_status,
+)
 from volrecon.pipeline.store import STATUS_DONE, STATUS_FAILED, STATUS_PENDING
 
 
@@ -275,3 +282,23 @@ def test_temporal_windows_resume_bit_identical_under_any_compute(job_files):
     resumed = run_job(job.with_compute(scheduler="synchronous", workers=1, frames_per_task=1))
     assert resumed.computed == 6
     assert_bit_identical(read_store_arrays(job.output_path), reference)
+
+
+def test_lead_in_seconds_counted_on_the_chains_first_frame(job_files):
+    # Chains of 3 after a lead-in of 1 (the default job): frames 2, 5 and 8 are solved as
+    # lead-ins of the chains starting at 3, 6 and 9. Frame 6's input is not finite, so its own
+    # solve never runs: what it records is exactly the lead-in solve of frame 5. Frame 4 fails
+    # the same way mid-chain and records no time at all.
+    frames = job_files.raw.astype(np.float32) - 100
+    frames[[4, 6], 3, 3] = np.nan
+    tifffile.imwrite(job_files.folder / "float.tif", frames)
+    job = load_job(job_files.write_job(video={"path": "float.tif", "dark": None}))
+    assert run_job(job).failed == 2
+    seconds = zarr.open_group(job.output_path, mode="r")["diagnostics/seconds"][:]
+    assert np.isnan(seconds[4]) and seconds[6] > 0
+    assert np.isfinite(np.delete(seconds, 4)).all()
+    # `volrecon status` shows their sum (reference: numpy's nansum of the stored array).
+    status = store_status(job.output_path)
+    assert status.solve_seconds == pytest.approx(np.nansum(seconds, dtype=np.float64))
+    (line,) = [line for line in format_status(status) if line.startswith("solve time: ")]
+    assert "summed over the 12 finished frames" in line and "lead-in" in line

@@ -51,6 +51,9 @@ class StoreStatus:
         Every run's record (start, end, outcome, scheduler, …).
     last_verify : dict or None
         What the last ``volrecon verify`` found (when, frames, damaged frames), if one ran.
+    solve_seconds : float
+        Solve seconds summed over the finished frames (``diagnostics/seconds``; each chain's
+        unstored lead-in solves are counted on its first stored frame).
     """
 
     path: Path
@@ -64,6 +67,7 @@ class StoreStatus:
     seconds_left: float = float("nan")
     runs: list[dict[str, Any]] = field(default_factory=list)
     last_verify: dict[str, Any] | None = None
+    solve_seconds: float = 0.0
 
     @property
     def pending(self) -> int:
@@ -122,10 +126,12 @@ def store_status(path: str | os.PathLike[str]) -> StoreStatus:
             elapsed = float(last["ended_epoch_s"]) - start
             computed = int(last.get("frames_done_after", before)) - before
             rate = computed / elapsed if elapsed > 0 and computed > 0 else float("nan")
+    seconds = np.asarray(store.diagnostics_arrays()["seconds"][:], dtype=np.float64)
     return StoreStatus(path=path, total=len(status), done=done, failed=failed,
                        failures=store.failures(), running=running, holder=holder,
                        frames_per_second=rate, seconds_left=seconds_left, runs=runs,
-                       last_verify=last_verify if isinstance(last_verify, dict) else None)
+                       last_verify=last_verify if isinstance(last_verify, dict) else None,
+                       solve_seconds=float(np.nansum(seconds[status != STATUS_PENDING])))
 
 
 def format_status(status: StoreStatus, *, max_failures: int = 20) -> list[str]:
@@ -150,6 +156,12 @@ def format_status(status: StoreStatus, *, max_failures: int = 20) -> list[str]:
         lines.append(f"throughput: {status.frames_per_second:.3g} frames/s ({which})")
     if status.running and np.isfinite(status.seconds_left):
         lines.append(f"time left: {format_duration(status.seconds_left)}")
+    if status.done:
+        total = status.solve_seconds
+        shown = f"{total:.3g} s" if total < 60 else format_duration(total)
+        lines.append(f"solve time: {shown} summed over the {status.done} finished frames "
+                     f"({total / status.done:.3g} s per frame in one worker; each chain's "
+                     "lead-in solves are counted on its first frame)")
     if status.runs and status.runs[-1].get("lost_worker_count"):
         which = "current run" if status.running else "last run"
         lines.append(format_lost_workers(status.runs[-1], which=which))

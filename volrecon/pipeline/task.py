@@ -8,7 +8,9 @@ from its store inside the worker, once per process.
 
 from __future__ import annotations
 
+import collections
 import logging
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
 from functools import lru_cache
 from typing import TYPE_CHECKING, Any
@@ -36,6 +38,10 @@ if TYPE_CHECKING:
 __all__ = ["TaskContext", "TaskSpec", "run_task"]
 
 logger = logging.getLogger(__name__)
+
+#: Finished volumes queued for a task's writer thread at most; a solver this far ahead
+#: waits, so memory stays flat.
+WRITE_QUEUE_FRAMES = 4
 
 
 @dataclass(frozen=True)
@@ -118,6 +124,14 @@ def run_task(context: TaskContext, spec: TaskSpec) -> FrameRecords:
     range of a float16 store fails the same way (its reason names ``[output] dtype``). Each
     stored frame is written to every resolution level (the 2 × 2 lateral mean of the level
     above, :func:`volrecon.io.ome_zarr.downsample_yx`) and, when asked, to the projections.
+    The solve seconds of a chain's lead-in frames are added to its first stored frame's, so
+    the recorded seconds sum to the task's whole solve time.
+
+    Reading overlaps the solves (the next chain's frames are read and corrected in a thread
+    while the current chain solves), and so does writing (a second thread encodes and writes
+    the finished volumes in order, at most :data:`WRITE_QUEUE_FRAMES` behind the solver). The
+    task returns only after every write has finished, so the driver's record of its frames
+    always follows their data.
 
     Raises
     ------
@@ -143,51 +157,79 @@ def run_task(context: TaskContext, spec: TaskSpec) -> FrameRecords:
         "residual": np.full(n, np.nan), "converged": np.zeros(n, bool),
         "seconds": np.full(n, np.nan, np.float32), "status": np.zeros(n, np.uint8)}
     failures: dict[int, str] = {}
-    for chain_start in range(spec.start, spec.stop, solver.chain_frames):
-        chain_stop = min(chain_start + solver.chain_frames, spec.stop)
-        solve_start = solver.chain_span(chain_start)
+    chains = [(start, min(start + solver.chain_frames, spec.stop), solver.chain_span(start))
+              for start in range(spec.start, spec.stop, solver.chain_frames)]
+
+    def read(solve_start: int, chain_stop: int) -> np.ndarray:
         raw = context.source.read(context.first_frame + solve_start,
                                   context.first_frame + chain_stop)
-        frames = context.correction.apply(raw)
-        del raw
-        for offset, result in enumerate(solve_chain(frames, model, solver)):
-            t = solve_start + offset
-            if t < chain_start:  # lead-in: only its state goes on
-                continue
-            i = t - spec.start
-            failure = result.failure or ("no volume" if result.volume is None else None)
-            if failure is None and result.volume is not None and largest is not None:
-                peak = float(np.abs(result.volume).max())
-                if peak > largest:
-                    failure = (f"values up to {peak:.4g} exceed the store's "
-                               f"{group[IMAGE_PATH].dtype} range ({largest:.6g}); set "
-                               "[output] dtype = \"float32\" (or scale the frames down)")
-            if failure is None and result.volume is not None:
-                volume = result.volume
-                records["status"][i] = STATUS_DONE
-            else:
-                volume = np.full(model.shape_in, np.nan, dtype=np.float32)
-                records["status"][i] = STATUS_FAILED
-                failures[t] = failure or "no volume"
-                logger.warning("frame %d (video frame %d): %s", t, context.first_frame + t,
-                               failure)
-            info = result.info
-            if info is not None:
-                records["iterations"][i] = info.iterations
-                records["objective"][i] = info.objective
-                records["residual"][i] = info.residual
-                records["converged"][i] = info.converged
-                records["seconds"][i] = info.seconds
-            writers[IMAGE_PATH].write(t, volume)
-            level = volume
-            for key in levels:
-                level = downsample_yx(level)
-                writers[key].write(t, level)
-            if context.projections:
-                for name, projected in max_projections(volume).items():
-                    writers[name].write(t, projected)
-    for writer in writers.values():
-        writer.check_written()
+        return context.correction.apply(raw)
+
+    def write(t: int, volume: np.ndarray) -> None:
+        writers[IMAGE_PATH].write(t, volume)
+        level = volume
+        for key in levels:
+            level = downsample_yx(level)
+            writers[key].write(t, level)
+        if context.projections:
+            for name, projected in max_projections(volume).items():
+                writers[name].write(t, projected)
+
+    # One thread reads (and corrects) the next chain's frames while this one solves, another
+    # encodes and writes the finished frames in order; at most WRITE_QUEUE_FRAMES volumes wait
+    # for it, so memory stays flat. The task returns only once every write is done.
+    reader = ThreadPoolExecutor(1, thread_name_prefix="volrecon-read")
+    writer = ThreadPoolExecutor(1, thread_name_prefix="volrecon-write")
+    writes: collections.deque[Future[None]] = collections.deque()
+    try:
+        upcoming = reader.submit(read, chains[0][2], chains[0][1])
+        for k, (chain_start, _, solve_start) in enumerate(chains):
+            frames = upcoming.result()
+            if k + 1 < len(chains):
+                upcoming = reader.submit(read, chains[k + 1][2], chains[k + 1][1])
+            lead_in_seconds = 0.0
+            for offset, result in enumerate(solve_chain(frames, model, solver)):
+                t = solve_start + offset
+                info = result.info
+                if t < chain_start:  # lead-in: only its state (and its time) goes on
+                    lead_in_seconds += info.seconds if info is not None else 0.0
+                    continue
+                i = t - spec.start
+                failure = result.failure or ("no volume" if result.volume is None else None)
+                if failure is None and result.volume is not None and largest is not None:
+                    peak = float(np.abs(result.volume).max())
+                    if peak > largest:
+                        failure = (f"values up to {peak:.4g} exceed the store's "
+                                   f"{group[IMAGE_PATH].dtype} range ({largest:.6g}); set "
+                                   "[output] dtype = \"float32\" (or scale the frames down)")
+                if failure is None and result.volume is not None:
+                    volume = result.volume
+                    records["status"][i] = STATUS_DONE
+                else:
+                    volume = np.full(model.shape_in, np.nan, dtype=np.float32)
+                    records["status"][i] = STATUS_FAILED
+                    failures[t] = failure or "no volume"
+                    logger.warning("frame %d (video frame %d): %s", t,
+                                   context.first_frame + t, failure)
+                if info is not None:
+                    records["iterations"][i] = info.iterations
+                    records["objective"][i] = info.objective
+                    records["residual"][i] = info.residual
+                    records["converged"][i] = info.converged
+                    records["seconds"][i] = info.seconds
+                if t == chain_start and lead_in_seconds > 0:  # on the chain's first frame
+                    records["seconds"][i] = lead_in_seconds + np.nan_to_num(
+                        records["seconds"][i])
+                writes.append(writer.submit(write, t, volume))
+                while len(writes) > WRITE_QUEUE_FRAMES:
+                    writes.popleft().result()
+        while writes:
+            writes.popleft().result()
+    finally:
+        reader.shutdown(wait=True, cancel_futures=True)
+        writer.shutdown(wait=True, cancel_futures=True)
+    for frame_writer in writers.values():
+        frame_writer.check_written()
     return FrameRecords(start=spec.start, stop=spec.stop, failures=failures, **records)
 
 

@@ -178,3 +178,10 @@ def test_a_volume_beyond_float16_range_fails_with_its_reason(job_files, tmp_path
     failed = int(np.flatnonzero(status == STATUS_FAILED)[0])
     assert np.isnan(np.asarray(store.image[failed])).all()  # NaN, never inf
     assert not (status == STATUS_DONE).all()
+
+
+def test_status_names_the_layout(job_files, pyramid_job, capsys):
+    run_job(load_job(pyramid_job))
+    assert main(["status", str(job_files.folder / "out.zarr")]) == 0
+    out = capsys.readouterr().out
+    assert "layout: format 3, 3 resolution levels, float32, 3 frames per file" in out

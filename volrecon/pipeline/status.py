@@ -54,6 +54,8 @@ class StoreStatus:
     solve_seconds : float
         Solve seconds summed over the finished frames (``diagnostics/seconds``; each chain's
         unstored lead-in solves are counted on its first stored frame).
+    layout : str
+        How the store is laid out: format, resolution levels, element type, frames per file.
     """
 
     path: Path
@@ -68,6 +70,7 @@ class StoreStatus:
     runs: list[dict[str, Any]] = field(default_factory=list)
     last_verify: dict[str, Any] | None = None
     solve_seconds: float = 0.0
+    layout: str = ""
 
     @property
     def pending(self) -> int:
@@ -131,7 +134,18 @@ def store_status(path: str | os.PathLike[str]) -> StoreStatus:
                        failures=store.failures(), running=running, holder=holder,
                        frames_per_second=rate, seconds_left=seconds_left, runs=runs,
                        last_verify=last_verify if isinstance(last_verify, dict) else None,
-                       solve_seconds=float(np.nansum(seconds[status != STATUS_PENDING])))
+                       solve_seconds=float(np.nansum(seconds[status != STATUS_PENDING])),
+                       layout=_layout(store))
+
+
+def _layout(store: JobStore) -> str:
+    """One line on the store's layout, e.g. ``format 3, 2 resolution levels, float32, 32
+    frames per file``."""
+    levels = 1 + sum(1 for key in store.frame_arrays() if key.isdigit() and key != "0")
+    frames = store.shard_frames
+    return (f"format {store.attributes.get('format_version')}, {levels} resolution "
+            f"level{'s' if levels > 1 else ''}, {store.image.dtype}, "
+            + (f"{frames} frames per file" if frames > 1 else "one file per chunk"))
 
 
 def format_status(status: StoreStatus, *, max_failures: int = 20) -> list[str]:
@@ -167,6 +181,8 @@ def format_status(status: StoreStatus, *, max_failures: int = 20) -> list[str]:
         lines.append(format_lost_workers(status.runs[-1], which=which))
     if status.last_verify is not None:
         lines.append(format_last_verify(status.last_verify))
+    if status.layout:
+        lines.append(f"layout: {status.layout}")
     return lines
 
 

@@ -15,7 +15,7 @@ from __future__ import annotations
 import argparse
 import json
 import sys
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from typing import Any
 
 __all__ = ["add_arguments", "main", "run"]
@@ -87,22 +87,12 @@ def run(args: argparse.Namespace) -> int:
         from volrecon.bench import lenslet
 
         records = lenslet.run(threads=args.threads)
-        if args.json:
-            json.dump({"lenslet": records}, sys.stdout, indent=1)
-            sys.stdout.write("\n")
-        else:
-            print("\n".join(lenslet.report_lines(records)))
-        return 0
+        return _show(args, "lenslet", records, lambda: lenslet.report_lines(records))
     if args.store:
         from volrecon.bench import store
 
         result = store.run(n_frames=args.frames or 1000, size_zyx=sizes[0])
-        if args.json:
-            json.dump({"store": result}, sys.stdout, indent=1)
-            sys.stdout.write("\n")
-        else:
-            print("\n".join(store.report_lines(result)))
-        return 0
+        return _show(args, "store", result, lambda: store.report_lines(result))
     if args.temporal:
         from volrecon.bench import temporal
 
@@ -187,9 +177,15 @@ def _run_pipeline(args: argparse.Namespace, size_zyx: tuple[int, int, int]) -> i
         raise ConfigError("--pipeline runs on the CPU; leave out --device")
     report = pipeline.run(n_frames=args.frames or 240, size_zyx=size_zyx, threads=args.threads,
                           schedulers=args.scheduler or ("threads", "processes"))
+    return _show(args, "pipeline", report, lambda: pipeline.report_lines(report))
+
+
+def _show(args: argparse.Namespace, name: str, result: Any,
+          lines: Callable[[], list[str]]) -> int:
+    """Print one benchmark's `result` as JSON under `name` (``--json``) or as its lines."""
     if args.json:
-        json.dump({"pipeline": report}, sys.stdout, indent=1)
+        json.dump({name: result}, sys.stdout, indent=1)
         sys.stdout.write("\n")
     else:
-        print("\n".join(pipeline.report_lines(report)))
+        print("\n".join(lines()))
     return 0

@@ -35,7 +35,7 @@ from volrecon.models.depth_convolution import DepthConvolutionPSF
 from volrecon.models.field_varying import FieldVaryingPSF
 from volrecon.models.low_rank import LowRankDepthPSF
 
-__all__ = ["Calibration", "calibrate_file", "calibrate_stack", "default_report_dir"]
+__all__ = ["Calibration", "calibrate_file", "calibrate_stack", "default_report_dir", "output_paths"]
 
 
 @dataclass(frozen=True)
@@ -375,6 +375,26 @@ def _field(psf_kzyx: np.ndarray, positions: np.ndarray, geometry: Geometry, dtyp
     return Calibration(model=model, report=report, psf_zyx=kernels)
 
 
+def output_paths(out: str | os.PathLike[str], report_dir: str | os.PathLike[str] | None
+                 ) -> tuple[Path, Path]:
+    """The model store and report folder of a calibration, checked before any work.
+
+    Raises
+    ------
+    ModelStoreError
+        If either exists and is not what volrecon writes there (a model store, a report).
+    """
+    out_path = Path(out)
+    report_path = Path(report_dir) if report_dir is not None else default_report_dir(out_path)
+    if out_path.exists() and not (out_path / "zarr.json").is_file():
+        raise ModelStoreError(f"{out_path}: exists and is not a volrecon model store; choose "
+                              "another --out path")
+    if report_path.exists() and not (report_path / "summary.txt").is_file():
+        raise ModelStoreError(f"{report_path}: exists and is not a calibration report; move "
+                              "it or choose another --out path")
+    return out_path, report_path
+
+
 def default_report_dir(model_path: str | os.PathLike[str]) -> Path:
     """Where ``calibrate_file`` puts the report: ``NAME.report`` beside the model store.
 
@@ -442,14 +462,7 @@ def calibrate_file(
     from volrecon.io.tiff import read_tiff_stack
     from volrecon.models.store import save_model
 
-    out_path = Path(out)
-    report_path = Path(report_dir) if report_dir is not None else default_report_dir(out_path)
-    if out_path.exists() and not (out_path / "zarr.json").is_file():
-        raise ModelStoreError(f"{out_path}: exists and is not a volrecon model store; choose "
-                              "another --out path")
-    if report_path.exists() and not (report_path / "summary.txt").is_file():
-        raise ModelStoreError(f"{report_path}: exists and is not a calibration report; move "
-                              "it or choose another --out path")
+    out_path, report_path = output_paths(out, report_dir)
     # Options first: a typo should not cost reading a large scan.
     _check_options(depth_step_um, pixel_size_um, options.get("depth_start_um", 0.0),
                    options.get("bin_factor", 1), options.get("wavelength_nm"),

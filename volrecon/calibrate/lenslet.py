@@ -3,14 +3,13 @@
 from __future__ import annotations
 
 import os
-from pathlib import Path
 from typing import Any
 
 import numpy as np
 
 from volrecon.calibrate.calibration import _check_options
 from volrecon.calibrate.cleaning import clean_psf_stack, normalization_option
-from volrecon.errors import DataError, ModelStoreError, ShapeError, VolreconError
+from volrecon.errors import DataError, ShapeError, VolreconError
 from volrecon.models.periodic import LensletPSF
 
 __all__ = ["calibrate_lenslet_file", "calibrate_lenslet_stack"]
@@ -179,20 +178,13 @@ def calibrate_lenslet_file(
     VolreconError
         What reading or :func:`calibrate_lenslet_stack` raises, with the file named.
     """
-    from volrecon.calibrate.calibration import default_report_dir
+    from volrecon.calibrate.calibration import output_paths
     from volrecon.calibrate.lenslet_report import lenslet_report
     from volrecon.io.files import replacing
     from volrecon.io.tiff import read_tiff_stack
     from volrecon.models.store import save_model
 
-    out_path = Path(out)
-    report_path = Path(report_dir) if report_dir is not None else default_report_dir(out_path)
-    if out_path.exists() and not (out_path / "zarr.json").is_file():
-        raise ModelStoreError(f"{out_path}: exists and is not a volrecon model store; choose "
-                              "another --out path")
-    if report_path.exists() and not (report_path / "summary.txt").is_file():
-        raise ModelStoreError(f"{report_path}: exists and is not a calibration report; move "
-                              "it or choose another --out path")
+    out_path, report_path = output_paths(out, report_dir)
     scan = read_tiff_stack(stack_path, what="bead scan")
     dark = None if dark_path is None else read_tiff_stack(dark_path, what="dark frame")
     try:

@@ -237,30 +237,14 @@ def write_hydrogel_scenario(directory: str | os.PathLike[str], *, rng: RNGLike =
                             / camera.exposure_s, rng=scan_rng)
     dark = camera.dark_frames(design.shape_yx, dark_frames, rng=dark_rng)
 
-    sampling = {"pixel_size_um": pixel, "sensor_pixel_size_um": design.sensor_pixel_um}
-    write_tiff(files["psf_scan"], scan, axes="ZYX",
-               metadata={**sampling, "depth_step_um": depth_step_um,
-                         "depth_start_um": float(depths[0]),
-                         "exposure_s": psf_scan_exposure_s})
-    write_tiff(files["dark"], dark, axes="TYX", metadata={"exposure_s": camera.exposure_s})
-    write_tiff(files["video"], video, axes="TYX",
-               metadata={**sampling, "frame_interval_s": frame_interval_s,
-                         "exposure_s": camera.exposure_s})
-    np.save(files["truth_volumes"], scene.volumes_tzyx, allow_pickle=False)
-    np.save(files["truth_positions"], scene.positions_tnzyx, allow_pickle=False)
-    np.save(files["truth_photons"], scene.photons_n, allow_pickle=False)
-    np.save(files["truth_psf"], truth_stack.psf_zyx, allow_pickle=False)
-    np.save(files["truth_frames_photons"], photons, allow_pickle=False)
-
-    scenario = Scenario(
-        directory=folder.resolve(), files=files, design=design, camera=camera,
-        psf_scan_camera=scan_camera, shape_zyx=shape, n_frames=n_frames,
-        depth_step_um=float(depth_step_um), depth_start_um=float(depths[0]),
-        pixel_size_um=float(pixel), sensor_pixel_size_um=float(design.sensor_pixel_um),
-        frame_interval_s=float(frame_interval_s), n_beads=n_beads, bead_offset_yx_um=offset,
-        background_photons=float(background_photons), seed=seed)
-    files["manifest"].write_text(json.dumps(scenario.to_json(), indent=2) + "\n")
-    return scenario
+    return _write_files(
+        folder, files, design=design, camera=camera, scan_camera=scan_camera, shape=shape,
+        scan=scan, scan_axes="ZYX", scan_metadata={}, dark=dark, video=video, scene=scene,
+        truth_psf=truth_stack.psf_zyx, photons=photons, n_frames=n_frames,
+        depth_step_um=depth_step_um,
+        depths=depths, pixel=pixel, frame_interval_s=frame_interval_s,
+        psf_scan_exposure_s=psf_scan_exposure_s, n_beads=n_beads, offset=offset,
+        background_photons=background_photons, seed=seed)
 
 
 def _gel_scene(shape: tuple[int, int, int], n_frames: int, *, depth_step_um: float,
@@ -365,11 +349,28 @@ def write_lenslet_scenario(directory: str | os.PathLike[str], *, rng: RNGLike = 
                               + scan_background, rng=scan_rng)
     dark = camera.dark_frames(design.shape_yx, dark_frames, rng=dark_rng)
 
+    return _write_files(
+        folder, files, design=design, camera=camera, scan_camera=scan_camera, shape=shape,
+        scan=scan, scan_axes="ZIJYX", scan_metadata={"lenslet_pitch": design.lenslet_pitch},
+        dark=dark, video=video, scene=scene, truth_psf=truth_stack.psf, photons=photons,
+        n_frames=n_frames, depth_step_um=depth_step_um, depths=depths, pixel=pixel,
+        frame_interval_s=frame_interval_s, psf_scan_exposure_s=psf_scan_exposure_s,
+        n_beads=n_beads, offset=(0.0, 0.0), background_photons=background_photons, seed=seed)
+
+
+def _write_files(folder: Path, files: dict[str, Path], *, design: Any, camera: Camera,
+                 scan_camera: Camera, shape: tuple[int, int, int], scan: np.ndarray,
+                 scan_axes: str, scan_metadata: dict[str, Any], dark: np.ndarray,
+                 video: np.ndarray, scene: Any, truth_psf: np.ndarray, photons: np.ndarray,
+                 n_frames: int, depth_step_um: float, depths: np.ndarray, pixel: float,
+                 frame_interval_s: float, psf_scan_exposure_s: float, n_beads: int,
+                 offset: tuple[float, float], background_photons: float, seed: Any
+                 ) -> Scenario:
+    """Write a scenario's TIFFs, truth arrays and manifest (both instruments)."""
     sampling = {"pixel_size_um": pixel, "sensor_pixel_size_um": design.sensor_pixel_um}
-    write_tiff(files["psf_scan"], scan, axes="ZIJYX",
+    write_tiff(files["psf_scan"], scan, axes=scan_axes,
                metadata={**sampling, "depth_step_um": depth_step_um,
-                         "depth_start_um": float(depths[0]),
-                         "lenslet_pitch": design.lenslet_pitch,
+                         "depth_start_um": float(depths[0]), **scan_metadata,
                          "exposure_s": psf_scan_exposure_s})
     write_tiff(files["dark"], dark, axes="TYX", metadata={"exposure_s": camera.exposure_s})
     write_tiff(files["video"], video, axes="TYX",
@@ -378,15 +379,14 @@ def write_lenslet_scenario(directory: str | os.PathLike[str], *, rng: RNGLike = 
     np.save(files["truth_volumes"], scene.volumes_tzyx, allow_pickle=False)
     np.save(files["truth_positions"], scene.positions_tnzyx, allow_pickle=False)
     np.save(files["truth_photons"], scene.photons_n, allow_pickle=False)
-    np.save(files["truth_psf"], truth_stack.psf, allow_pickle=False)
+    np.save(files["truth_psf"], truth_psf, allow_pickle=False)
     np.save(files["truth_frames_photons"], photons, allow_pickle=False)
-
     scenario = Scenario(
         directory=folder.resolve(), files=files, design=design, camera=camera,
         psf_scan_camera=scan_camera, shape_zyx=shape, n_frames=n_frames,
         depth_step_um=float(depth_step_um), depth_start_um=float(depths[0]),
         pixel_size_um=float(pixel), sensor_pixel_size_um=float(design.sensor_pixel_um),
-        frame_interval_s=float(frame_interval_s), n_beads=n_beads, bead_offset_yx_um=(0.0, 0.0),
+        frame_interval_s=float(frame_interval_s), n_beads=n_beads, bead_offset_yx_um=offset,
         background_photons=float(background_photons), seed=seed)
     files["manifest"].write_text(json.dumps(scenario.to_json(), indent=2) + "\n")
     return scenario

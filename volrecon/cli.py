@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import argparse
 import logging
+import os
 import sys
 import warnings
 from collections.abc import Callable, Sequence
@@ -495,6 +496,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print(f"volrecon {args.command}: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:  # output piped into `head` or a pager that quit: not an error
+        # Python would report the pipe again while flushing stdout at exit.
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 0
     finally:
         tifffile_logger.setLevel(tifffile_level)
 

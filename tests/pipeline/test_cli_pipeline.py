@@ -98,3 +98,19 @@ def test_progress_in_a_log_is_plain_lines_with_wall_time_rate(job_files):
     rate = float(lines[-1].split(", ")[1].split()[0])
     assert rate == pytest.approx(N_FRAMES / result.seconds, rel=0.5)
     assert "\r" not in stream.getvalue()
+
+
+def test_status_into_a_closed_pipe_is_quiet(job_files):
+    # `volrecon status STORE | head -1`: the reader may quit before the writer is done.
+    import subprocess
+    import sys
+
+    run_job(load_job(job_files.write_job()))
+    child = subprocess.Popen([sys.executable, "-m", "volrecon.cli", "status",
+                              str(job_files.folder / "out.zarr")],
+                             stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    assert child.stdout is not None and child.stderr is not None
+    child.stdout.close()  # the pipe's reader is gone before the first line is written
+    with child.stderr:
+        err = child.stderr.read().decode()
+    assert child.wait(timeout=120) == 0 and "Traceback" not in err, err

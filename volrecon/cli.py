@@ -468,6 +468,24 @@ class _WarningLines:
             self.emit(message)
 
 
+#: dask.distributed loggers whose warnings (a lost worker's rescheduled keys, nanny restarts)
+#: volrecon reports itself, in its own lines and the run record; --debug shows them.
+_DASK_LOGGERS = ("distributed", "distributed.client", "distributed.nanny",
+                 "distributed.scheduler", "distributed.worker")
+
+
+def _quiet_dask_logs() -> None:
+    """Raise dask.distributed's loggers to ERROR, now and when it is imported later (it sets
+    its levels from the dask config ``logging`` on import)."""
+    import dask.config
+
+    levels = dask.config.config.setdefault("logging", {})
+    if isinstance(levels, dict):
+        levels.update(dict.fromkeys(_DASK_LOGGERS, "error"))
+    for name in _DASK_LOGGERS:
+        logging.getLogger(name).setLevel(logging.ERROR)
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``volrecon`` console script; returns the exit status."""
     parser = build_parser()
@@ -482,6 +500,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     tifffile_logger = logging.getLogger("tifffile")
     tifffile_level = tifffile_logger.level
     tifffile_logger.setLevel(logging.CRITICAL)
+    _quiet_dask_logs()
     lines = _WarningLines()
     try:
         with warnings.catch_warnings():

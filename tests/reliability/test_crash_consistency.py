@@ -127,6 +127,12 @@ def test_sigkill_at_random_moments_then_resume(crash_job):
         states[state] += 1
         if state == "complete":  # resumed to the end: compare, then a fresh round
             assert_bit_identical(read_store_arrays(store), reference)
+            if child.returncode == -signal.SIGKILL:
+                # Killed after its last frame, inside the run record's final write: the
+                # same command finishes the record and removes the temporary file.
+                again = run_cli(["run", str(job), "--no-progress"])
+                assert again.returncode == 0 and again.stderr == "", again.stderr
+                assert_bit_identical(read_store_arrays(store), reference)
             assert not list(store.rglob("*.partial"))
             rounds += 1
             shutil.rmtree(store)

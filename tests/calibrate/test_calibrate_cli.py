@@ -35,7 +35,7 @@ def test_bead_scan_to_model_and_report(rng, tmp_path, gaussian, camera, capsys):
     assert model.geometry.depth_start_um == -8.0 and model.calibration["source"] == scan
     report_dir = tmp_path / "bead.report"
     assert (report_dir / "summary.txt").is_file() and (report_dir / "report.json").is_file()
-    assert len(list(report_dir.glob("*.png"))) == 5
+    assert len(list(report_dir.glob("*.png"))) == 6 and (report_dir / "psf.png").is_file()
     # Known truth: the expanded model reproduces the PSF (issue criterion per plane).
     expanded = model.expanded_stack()
     for got, truth in zip(expanded, psf[:, :, 2:46], strict=True):

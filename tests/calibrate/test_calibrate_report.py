@@ -92,3 +92,33 @@ def test_without_matplotlib_the_text_says_so(report, tmp_path, monkeypatch):
     written = report.write(tmp_path / "r")
     assert [p.split("/")[-1] for p in written.files] == ["summary.txt", "report.json"]
     assert "install matplotlib" in (tmp_path / "r" / "summary.txt").read_text()
+
+
+def test_psf_picture_shows_the_cleaned_planes(rng, speckle, camera, tmp_path):
+    from matplotlib import colormaps
+    from matplotlib.image import imread
+
+    raw, dark = camera(rng, speckle(rng, 8, 40), photons=3e5)
+    calibration = calibrate_stack(raw, dark=dark, depth_step_um=2.0, pixel_size_um=0.5)
+    written = calibration.report.write(tmp_path / "r", psf_zyx=calibration.psf_zyx)
+    path = tmp_path / "r" / "psf.png"
+    assert str(path) in written.files
+    assert "psf.png" in (tmp_path / "r" / "summary.txt").read_text()
+    assert "psf.png" in json.loads((tmp_path / "r" / "report.json").read_text())["files"]
+    # Reference: matplotlib reads it back as a PNG of the figure's size (5 panels of 3 x 3.4
+    # inches at 100 dpi) ...
+    image = imread(path)[..., :3]
+    assert image.shape == (340, 1500, 3)
+    # ... showing the planes in the inferno map from 0 to each view's maximum: every panel's
+    # brightest pixel is inferno(1.0); the PNG's 8-bit rounding (1/255) is far within 0.02.
+    top = np.asarray(colormaps["inferno"](1.0)[:3])
+    near_top = np.all(np.abs(image - top) < 0.02, axis=-1)
+    panels = [near_top[:, k * 300:(k + 1) * 300].any() for k in range(5)]
+    assert all(panels), panels
+
+
+def test_summary_explains_distinguishable_depths_against_localisation(report):
+    text = report.summary_text()
+    assert "distinguishable depths: the 16 um scan over that distance" in text
+    assert "decorrelate below 0.5" in text
+    assert "not a limit on locating points" in text and "beads found at their depth" in text

@@ -8,6 +8,7 @@ import scipy.ndimage
 
 from volrecon.errors import DataError, FrameOffsetWarning
 from volrecon.io import FrameCorrection, check_offset, find_hot_pixels
+from volrecon.io.checks import estimate_zero_level
 
 SHAPE = (5, 40, 48)
 
@@ -65,6 +66,68 @@ def test_missing_dark_warns_only_for_a_flat_pedestal(rng):
     # Scene light over the whole sensor (a ramp from 50 to 250 counts) is no pedestal.
     ramp = np.linspace(50, 250, SHAPE[2])[None, None, :]
     check_offset((_beads(rng, offset=0.0) + ramp).astype(np.float32), None, video="v.tif")
+
+
+def _scenario_video(writer, folder, **options):
+    """The simulated video (5 frames) and the mean of its dark frames, as float64."""
+    import tifffile
+
+    scenario = writer(folder, n_frames=5, rng=4, **options)
+    video = tifffile.imread(scenario.files["video"]).astype(np.float64)
+    dark = tifffile.imread(scenario.files["dark"]).astype(np.float64).mean(axis=0)
+    return video, dark
+
+
+@pytest.mark.parametrize("gain", [0.5, 2.0])
+def test_diffuser_video_without_a_dark_warns_of_the_offset(tmp_path, gain):
+    from volrecon.simulate import write_hydrogel_scenario
+    from volrecon.simulate.camera import Camera
+
+    # Known truth: the simulated camera adds offset_adu = 100 counts to every pixel. Behind
+    # the diffuser no pixel is dark (the darkest sit ~3 counts above the offset at gain 0.5,
+    # ~12 at gain 2), so the pedestal rule cannot see it; the noise can.
+    camera = Camera(gain_adu_per_electron=gain, read_noise_electrons=1.6 * gain ** 0.5)
+    video, dark = _scenario_video(write_hydrogel_scenario, tmp_path, n_planes=8,
+                                  camera=camera)
+    with pytest.warns(FrameOffsetWarning) as caught:
+        figures = check_offset(video.astype(np.uint16), None, video="gel.tif")
+    message, = (str(w.message) for w in caught)
+    assert message.startswith("gel.tif: no [video] dark is given, but zero light sits at")
+    assert "set [video] dark" in message and "or subtract about" in message
+    # The level errs low by (read noise in counts)² / gain, under 2 counts here; structure
+    # of the caustics moved it by up to 14 counts (gain 2) in the simulations tried, so 15.
+    assert figures.zero_level == pytest.approx(camera.offset_adu, abs=15.0)
+    assert f"{figures.zero_level:.4g} counts" in message
+    # The same frames with their dark subtracted, by the job or beforehand: no warning.
+    check_offset(video, dark, video="gel.tif", dark="dark.tif")
+    check_offset((video - dark).astype(np.float32), None, video="gel-minus-dark.tif")
+
+
+def test_light_field_video_keeps_the_pedestal_rule(tmp_path):
+    from volrecon.simulate import write_lenslet_scenario
+
+    # Light between the lenslet images leaves dark pixels: the flat pedestal (the camera's
+    # 100 counts) is what is reported, as before, and nothing once the dark is subtracted.
+    video, dark = _scenario_video(write_lenslet_scenario, tmp_path)
+    with pytest.warns(FrameOffsetWarning, match="flat pedestal of about 100 counts") as caught:
+        check_offset(video.astype(np.uint16), None, video="lf.tif")
+    assert len(caught) == 1
+    check_offset(video, dark, video="lf.tif", dark="dark.tif")
+    check_offset((video - dark).astype(np.float32), None, video="lf-minus-dark.tif")
+
+
+def test_zero_level_of_pure_shot_noise_is_its_offset(rng):
+    # Known truth: y = c + K·Poisson(λ) has Var = K (E[y] − c) (Poisson variance = mean), so
+    # the line through (mean, variance) reaches zero variance at c. A smooth ramp of light
+    # (2 to 200 photons across the frame) gives the range of means; 100 frames' worth of
+    # 8 x 8 blocks put the level within ~1 count of c = 250.
+    ramp = np.linspace(2.0, 200.0, 96)[None, :] * np.ones((96, 1))
+    frames = 250.0 + 0.7 * rng.poisson(ramp, (6, 96, 96))
+    assert estimate_zero_level(frames) == pytest.approx(250.0, abs=1.5)
+    # Without shot noise (Gaussian read noise of constant sigma) the noise says nothing.
+    assert estimate_zero_level(250.0 + ramp + rng.normal(0.0, 2.0, (6, 96, 96))) is None
+    # Too few blocks (a 24 x 24 video): no estimate.
+    assert estimate_zero_level(frames[:2, :24, :24]) is None
 
 
 @pytest.mark.parametrize("dark", [False, True])

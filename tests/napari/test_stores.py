@@ -23,7 +23,7 @@ from napari_stores import (
 )
 
 from volrecon.errors import InputFileError, ModelStoreError
-from volrecon.models import FieldVaryingPSF, Geometry, LowRankDepthPSF
+from volrecon.models import DepthConvolutionPSF, FieldVaryingPSF, Geometry, LowRankDepthPSF
 from volrecon.napari.reader import get_reader
 from volrecon.napari.stores import model_store_layers, output_store_layers, store_kind
 
@@ -166,6 +166,51 @@ def test_field_varying_model_store_gives_one_stack_per_position(tmp_path, rng):
     # Reference: the saved kernels (Z, K, Y, X) with the position axis moved first.
     np.testing.assert_array_equal(data.compute(), np.moveaxis(model.kernels_zkyx, 1, 0))
     assert kwargs["axis_labels"] == ["field position", "z", "y", "x"]
+
+
+@pytest.mark.parametrize("kind", ["depth-convolution", "depth-low-rank", "field-varying"])
+def test_model_layers_show_the_recorded_throughput(tmp_path, rng, kind):
+    # Known truth: the throughput per field position and plane written into the model's
+    # calibration metadata, as calibration writes it ((K, Z) relative to the brightest).
+    nz = SHAPE_ZYX[0]
+    rows = 2 if kind == "field-varying" else 1
+    table = rng.uniform(0.3, 1.0, (rows, nz))
+    table[0, 1] = 0.2  # the dimmest plane: plane 1
+    table[:, 0] = 1.0  # the brightest plane, at every position
+    calibration = {"throughput": table.tolist()}
+    geometry = Geometry(SCALE_TZYX[1], SCALE_TZYX[2], DEPTH_START_UM)
+    if kind == "depth-convolution":
+        model = DepthConvolutionPSF(gaussian_psf(SHAPE_ZYX), geometry, calibration=calibration)
+    elif kind == "depth-low-rank":
+        _, ny, nx = SHAPE_ZYX
+        model = LowRankDepthPSF(rng.random((2, ny, nx), dtype=np.float32),
+                                rng.random((nz, 2), dtype=np.float32), geometry,
+                                calibration=calibration)
+    else:
+        kernels = np.stack([gaussian_psf(SHAPE_ZYX), gaussian_psf(SHAPE_ZYX)[:, ::-1]], axis=1)
+        model = FieldVaryingPSF.from_positions(kernels, [[4.0, 4.0], [15.0, 20.0]], geometry,
+                                               calibration=calibration)
+    model.save(tmp_path / "m.zarr")
+    (_, kwargs, _), *_ = model_store_layers(tmp_path / "m.zarr")
+    per_plane = table.min(axis=0)  # lowest over the field positions
+    np.testing.assert_allclose(kwargs["metadata"]["volrecon_throughput"], per_plane)
+    assert kwargs["name"].endswith("(throughput 0.20-1.00)")
+    summary = kwargs["metadata"]["volrecon_throughput_summary"]
+    assert summary.startswith("relative throughput per plane")
+    assert f"dimmest plane 1 ({DEPTH_START_UM + SCALE_TZYX[1]:g} um)" in summary
+    assert ("lowest of 2 PSFs" in summary) == (rows == 2)
+    assert " ".join(f"{v:.2f}" for v in per_plane) in summary
+
+
+def test_model_layers_say_when_no_throughput_is_recorded(make_napari_viewer, volrecon_plugin,
+                                                         model_store):
+    viewer = make_napari_viewer(show=False)
+    viewer.open(str(model_store), plugin="volrecon")
+    layer, = viewer.layers
+    # The napari layer keeps the metadata: a model from PSFModel.from_stack records none.
+    assert layer.metadata["volrecon_throughput"] is None
+    assert "not recorded" in layer.metadata["volrecon_throughput_summary"]
+    assert layer.name == f"{model_store.stem} PSF"
 
 
 def test_model_store_of_unknown_kind_is_refused(model_store):

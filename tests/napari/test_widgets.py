@@ -251,6 +251,29 @@ def test_traces_widget_explains_missing_input(make_napari_viewer, volrecon_plugi
     assert widget.export() is None and "choose a CSV file" in widget._message.value
 
 
+def test_traces_widget_hints_where_regions_come_from(make_napari_viewer, volrecon_plugin,
+                                                     output_store):
+    from volrecon.napari.traces_widget import REGIONS_HINT
+
+    viewer = make_napari_viewer(show=False)
+    viewer.open(str(output_store.path), plugin="volrecon")  # an image, but no regions layer
+    _, widget = viewer.window.add_plugin_dock_widget("volrecon", "Time traces")
+
+    def shown():
+        return widget.hint.native.isVisibleTo(widget.native) and widget.hint.value
+
+    assert shown() == REGIONS_HINT
+    assert "Points, Shapes or Labels layer" in REGIONS_HINT and "Load regions" in REGIONS_HINT
+    # A regions layer appears: the hint goes; it comes back when the layer is removed, and
+    # stays away for a Labels layer as for Points.
+    points = viewer.add_points([[0.0, 5.0, 1.0, 1.0]], name="beads", ndim=4)
+    assert not shown() and widget._regions.value == "beads"
+    viewer.layers.remove(points)
+    assert shown() == REGIONS_HINT and widget._regions.value is None
+    viewer.add_labels(np.zeros(SHAPE_ZYX, np.int32), name="cells")
+    assert not shown()
+
+
 def test_npe2_validate_passes():
     import subprocess
     import sys

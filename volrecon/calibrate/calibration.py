@@ -484,7 +484,7 @@ def calibrate_file(
         where = dark_path if ("dark frame" in str(exc) and dark_path is not None) else stack_path
         raise type(exc)(f"{where}: {exc}") from exc
     with replacing(report_path) as staging:
-        report = result.report.write(staging)
+        report = result.report.write(staging, psf_zyx=result.psf_zyx)
         save_model(result.model, out_path)
     files = tuple(str(report_path / Path(f).name) for f in report.files)
     return replace(result, report=replace(report, files=files))

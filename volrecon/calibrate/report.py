@@ -242,6 +242,13 @@ class CalibrationReport:
             lines.append(f"axial resolution: {self.axial_resolution_um:.3g} um "
                          f"(~{self.distinguishable_planes:.1f} distinguishable depths in the "
                          "scan)")
+            lines.append(f"  distinguishable depths: the {z * self.depth_step_um:g} um scan "
+                         "over that distance, i.e. depth slabs whose PSFs decorrelate below "
+                         "0.5 (extended objects in neighbouring slabs blur together)")
+            lines.append("  not a limit on locating points: an isolated bead is placed in depth "
+                         "much more finely, so a localisation check such as 'beads found at "
+                         "their depth (+-1 plane)' can be near 100 % with few distinguishable "
+                         "depths")
         lines.append(f"  criterion: {_AXIAL_CRITERION}" + (
             f" (planes binned {self.correlation_binning}x for this figure)"
             if self.correlation_binning > 1 else ""))
@@ -271,8 +278,19 @@ class CalibrationReport:
             lines.append("report files: " + ", ".join(Path(f).name for f in self.files))
         return "\n".join(lines)
 
-    def write(self, directory: str | Path) -> CalibrationReport:
+    def write(self, directory: str | Path, *, psf_zyx: np.ndarray | None = None
+              ) -> CalibrationReport:
         """Write ``summary.txt``, ``report.json`` and, with matplotlib, PNG plots.
+
+        Parameters
+        ----------
+        directory : str or path
+            Folder to write into (created).
+        psf_zyx : ndarray of shape (Z, Y, X) or (K, Z, Y, X), optional
+            The cleaned PSF planes the model was built from (``Calibration.psf_zyx``); when
+            given, ``psf.png`` shows them (the reference position's for several): the
+            maximum projection along depth, three planes across the scan and the maximum
+            projection along y (an x-z view).
 
         Returns a copy of this report whose :attr:`files` lists what was written. Without
         matplotlib the PNGs are skipped and ``summary.txt`` says so.
@@ -281,6 +299,8 @@ class CalibrationReport:
         out.mkdir(parents=True, exist_ok=True)
         try:
             plots = self._plots(out)
+            if psf_zyx is not None:
+                plots.insert(0, self._psf_figure(out, psf_zyx))
             note = ""
         except ImportError:
             plots = []
@@ -370,6 +390,36 @@ class CalibrationReport:
                      va="center", transform=ax2.transAxes)
         files.append(_save(fig, FigureCanvasAgg, out / "registration.png"))
         return files
+
+
+    def _psf_figure(self, out: Path, psf_zyx: np.ndarray) -> Path:
+        """``psf.png``: depth max projection, three planes and an x-z max projection."""
+        from matplotlib.backends.backend_agg import FigureCanvasAgg
+        from matplotlib.figure import Figure
+
+        stack = np.asarray(psf_zyx, dtype=np.float32)
+        if stack.ndim == 4:
+            stack = stack[self.reference_position or 0]
+        z = stack.shape[0]
+        depths = self.depth_start_um + self.depth_step_um * np.arange(z)
+        planes = np.unique(np.linspace(0, z - 1, min(z, 3)).round().astype(int))
+        ny, nx = stack.shape[1:]
+        width_um, height_um = nx * self.pixel_size_um, ny * self.pixel_size_um
+        fig = Figure(figsize=(3.0 * (2 + len(planes)), 3.4))
+        axes = fig.subplots(1, 2 + len(planes))
+        xy = (0.0, width_um, height_um, 0.0)
+        views = [(axes[0], stack.max(axis=0), "max over depth", xy, "y (um)", "equal")]
+        views += [(ax, stack[i], f"plane {i}: {depths[i]:g} um", xy, "y (um)", "equal")
+                  for ax, i in zip(axes[1:-1], planes, strict=True)]
+        half = 0.5 * self.depth_step_um
+        views.append((axes[-1], stack.max(axis=1), "max over y (x-z view)",
+                      (0.0, width_um, depths[-1] + half, depths[0] - half), "depth (um)",
+                      "auto"))
+        for ax, image, title, extent, ylabel, aspect in views:
+            ax.imshow(image, cmap="inferno", extent=extent, aspect=aspect, vmin=0.0,
+                      interpolation="nearest")
+            ax.set(xlabel="x (um)", ylabel=ylabel, title=title)
+        return _save(fig, FigureCanvasAgg, out / "psf.png")
 
 
 def _save(fig: Any, canvas: Any, path: Path) -> Path:

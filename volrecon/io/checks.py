@@ -5,6 +5,12 @@ A job reads a few frames spread over its range (:func:`sample_frames`) and check
 camera settings) and warns when the offset looks subtracted twice, too high or not at all;
 :func:`find_hot_pixels` finds the fixed single-pixel spikes that a missing dark leaves in
 every frame.
+
+Without a dark, a camera offset is found two ways. A flat pedestal under the darkest pixels
+gives it away where part of the sensor gets no light (a lens or lenslet image). A diffuser
+spreads light over the whole sensor, so nothing is dark; there the offset shows in the noise
+instead (:func:`estimate_zero_level`): shot noise grows with the light and the offset adds
+none, so the level where the variance would reach zero is the offset.
 """
 
 from __future__ import annotations
@@ -23,6 +29,7 @@ __all__ = [
     "HOT_PIXEL_SIGMA",
     "OffsetFigures",
     "check_offset",
+    "estimate_zero_level",
     "find_hot_pixels",
     "measure_offset",
     "noise_sigma",
@@ -56,6 +63,25 @@ ALREADY_SUBTRACTED_FRACTION = 0.05
 #: scene light, which varies over the sensor).
 PEDESTAL_SIGMA = 10.0
 PEDESTAL_FLATNESS_SIGMA = 3.0
+#: Without a dark and without a flat pedestal: an offset is reported when the zero-light
+#: level of :func:`estimate_zero_level` lies this many noise sigma (of the whole frame,
+#: shot noise included) above zero, and at most 3 sigma above the darkest pixels (an offset
+#: cannot exceed them; a level above them is a bad fit). On simulated diffuser videos
+#: (write_hydrogel_scenario: dense, sparse, dim and bright scenes, gains 0.5 and 2 counts
+#: per electron) the level of dark-subtracted frames came out between -1.1 and +1.4 sigma,
+#: that of the camera's 100-count offset between 5.2 sigma (gain 2) and 24 sigma (gain 0.5).
+ZERO_LEVEL_SIGMA = 4.0
+#: Blocks (side in pixels) of the mean-variance fit, the fewest blocks it needs, its bins,
+#: and the quantile of the block variances taken per bin (structure only adds variance, so a
+#: low quantile keeps to the noise; a bias common to all bins cancels in the zero level).
+_BLOCK_PX = 8
+_MIN_BLOCKS = 64
+_BINS = 8
+_VARIANCE_QUANTILE = 0.25
+#: The fit must explain the bins (R²) and the shot noise must at least double the variance
+#: over the range of means, else the extrapolation to zero variance is not trusted.
+_MIN_R_SQUARED = 0.9
+_MIN_VARIANCE_RISE = 1.0
 
 #: Hot pixel: more than this many noise sigma above the median of its 8 neighbours ...
 HOT_PIXEL_SIGMA = 8.0
@@ -117,6 +143,9 @@ class OffsetFigures:
         Largest raw pixel value.
     dark_median : float or None
         Median of the dark frame.
+    zero_level : float or None
+        The frames' zero-light level from their noise (:func:`estimate_zero_level`), after
+        the dark; None where the noise does not follow shot noise closely enough to tell.
     """
 
     negative_fraction: float
@@ -127,6 +156,7 @@ class OffsetFigures:
     sigma: float
     raw_max: float
     dark_median: float | None
+    zero_level: float | None = None
 
 
 def measure_offset(frames_tyx: np.ndarray, dark_yx: np.ndarray | None) -> OffsetFigures:
@@ -150,7 +180,71 @@ def measure_offset(frames_tyx: np.ndarray, dark_yx: np.ndarray | None) -> Offset
         sigma=noise_sigma(corrected[0]),
         raw_max=float(raw[finite].max()),
         dark_median=None if dark_yx is None else float(np.median(dark_yx)),
+        zero_level=estimate_zero_level(corrected),
     )
+
+
+def estimate_zero_level(frames_tyx: np.ndarray) -> float | None:
+    """The pixel value that zero light would give, from how the noise grows with the light.
+
+    Camera counts are ``y = c + K e + n`` with ``e`` Poisson photo-electrons, so locally
+    ``Var[y] = K (E[y] - c) + σ²``: the variance rises linearly with the mean and the offset
+    ``c`` adds none (photon transfer [1]_). The frames are cut into 8 × 8 blocks; each gives
+    its mean and its noise variance from second differences along x, ``y[x-1] - 2 y[x] +
+    y[x+1]`` (variance 6 σ² for white noise; 1.4826·MAD, squared, over 6), which cancel
+    smooth light and let less of a diffuser's caustics through than first differences.
+    Blocks are grouped by mean into 8 bins of equal count; a straight line through the
+    bins' median mean and lower-quartile variance, ``v = K m + d``, reaches zero variance
+    at ``m = -d / K``. That is ``c - σ² / K``: below the offset by the read noise in counts
+    squared over the gain (about 1 count for a scientific CMOS camera), so it errs low.
+
+    Parameters
+    ----------
+    frames_tyx : ndarray of shape (N, Y, X)
+        A few frames (after any dark); non-finite pixels make their block ignored.
+
+    Returns
+    -------
+    float or None
+        The zero-light level in the frames' units; None with fewer than 64 blocks, or when
+        the bins do not follow a rising line (R² under 0.9, or the variance less than
+        doubling over the range of means): data without shot noise (simulated, rescaled or
+        read-noise limited frames) say nothing about their offset this way.
+
+    References
+    ----------
+    .. [1] J. R. Janesick, "Photon Transfer: DN → λ", SPIE Press (2007).
+    """
+    frames = np.asarray(frames_tyx, dtype=np.float64)
+    if frames.ndim == 2:
+        frames = frames[None]
+    n, ny, nx = frames.shape
+    by, bx = ny // _BLOCK_PX, nx // _BLOCK_PX
+    if n * by * bx < _MIN_BLOCKS:
+        return None
+    blocks = (frames[:, : by * _BLOCK_PX, : bx * _BLOCK_PX]
+              .reshape(n, by, _BLOCK_PX, bx, _BLOCK_PX).transpose(0, 1, 3, 2, 4)
+              .reshape(-1, _BLOCK_PX, _BLOCK_PX))
+    blocks = blocks[np.isfinite(blocks).all(axis=(1, 2))]
+    if blocks.shape[0] < _MIN_BLOCKS:
+        return None
+    means = blocks.mean(axis=(1, 2))
+    diffs = np.diff(blocks, n=2, axis=2).reshape(blocks.shape[0], -1)
+    spread = np.median(np.abs(diffs - np.median(diffs, axis=1, keepdims=True)), axis=1)
+    variances = (_MAD_TO_SIGMA * spread) ** 2 / 6.0
+    order = np.argsort(means)
+    bins = np.array_split(order, _BINS)
+    m = np.array([np.median(means[b]) for b in bins])
+    v = np.array([np.quantile(variances[b], _VARIANCE_QUANTILE) for b in bins])
+    slope, intercept = np.polyfit(m, v, 1)
+    fitted = slope * m + intercept
+    total = float(np.sum((v - v.mean()) ** 2))
+    if slope <= 0 or total == 0:
+        return None
+    r_squared = 1.0 - float(np.sum((v - fitted) ** 2)) / total
+    if r_squared < _MIN_R_SQUARED or slope * (m[-1] - m[0]) < _MIN_VARIANCE_RISE * v[0]:
+        return None
+    return float(-intercept / slope)
 
 
 def check_offset(frames_tyx: np.ndarray, dark_yx: np.ndarray | None, *, video: str,
@@ -181,8 +275,10 @@ def check_offset(frames_tyx: np.ndarray, dark_yx: np.ndarray | None, *, video: s
     -----
     FrameOffsetWarning
         If more than 80 % of the pixels are below zero after the dark (subtracted twice,
-        or too high), or, without a dark, the frames sit on a flat pedestal far above zero
-        (a camera offset that nothing subtracts).
+        or too high), or, without a dark, the frames sit on a flat pedestal far above zero,
+        or (where no pixel is dark, as behind a diffuser) their noise says zero light lies
+        far above zero (:func:`estimate_zero_level`): a camera offset that nothing
+        subtracts.
     """
     figures = measure_offset(frames_tyx, dark_yx)
     f = figures
@@ -223,6 +319,15 @@ def check_offset(frames_tyx: np.ndarray, dark_yx: np.ndarray | None, *, video: s
             "offset, which the volumes would explain as haze; set [video] dark to a dark "
             "frame (the mean of frames taken with the light off)",
             FrameOffsetWarning, stacklevel=2)
+    elif (f.zero_level is not None and f.zero_level > ZERO_LEVEL_SIGMA * f.sigma
+          and f.zero_level <= f.low_1 + PEDESTAL_FLATNESS_SIGMA * f.sigma):
+        warnings.warn(
+            f"{video}: no [video] dark is given, but zero light sits at about "
+            f"{f.zero_level:.4g} counts (where the shot noise, which grows with the light, "
+            f"would vanish; {f.zero_level / f.sigma:.0f} times the noise of {f.sigma:.3g}): a "
+            "camera offset, which the volumes would explain as haze; set [video] dark to a "
+            "dark frame (the mean of frames taken with the light off), or subtract about "
+            f"{f.zero_level:.4g} counts from the video", FrameOffsetWarning, stacklevel=2)
     return figures
 
 

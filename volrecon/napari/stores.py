@@ -31,6 +31,7 @@ from volrecon.pipeline.store import STATUS_DONE, STORE_ATTRIBUTE
 __all__ = [
     "LayerData",
     "model_store_layers",
+    "model_throughput",
     "output_store_layers",
     "store_kind",
     "store_layers",
@@ -280,6 +281,49 @@ def _expand_low_rank(weights_zr: Any, kernels_ryx: Any) -> Any:
     return da.tensordot(weights, kernels_ryx.rechunk({0: -1}), axes=(1, 0)).astype(np.float32)
 
 
+def model_throughput(parameters: dict[str, Any], *, depth_start_um: float = 0.0,
+                     depth_step_um: float = 1.0) -> tuple[np.ndarray | None, str]:
+    """The relative throughput per plane a model store records, and one line about it.
+
+    Calibration stores the light of each plane relative to the brightest plane of all
+    (``volrecon_model/parameters/calibration/throughput``, shape ``(K, Z)``: one row per
+    field position or lenslet sub-position).
+
+    Parameters
+    ----------
+    parameters : dict
+        The store's ``volrecon_model/parameters`` (:attr:`StoredModel.parameters`).
+    depth_start_um, depth_step_um : float
+        Depth of plane 0 and the step, micrometres (to name the dimmest plane's depth).
+
+    Returns
+    -------
+    throughput : ndarray of shape (Z,) or None
+        Per plane, the lowest over the rows (None when the store records none, or not as
+        numbers, e.g. a model made with ``PSFModel.from_stack``).
+    summary : str
+        One line, e.g. ``"relative throughput per plane 0.41-1.00, dimmest plane 7 (14 um)"``.
+    """
+    calibration = parameters.get("calibration")
+    values = calibration.get("throughput") if isinstance(calibration, dict) else None
+    try:
+        table = np.atleast_2d(np.asarray(values, dtype=np.float64))
+    except (TypeError, ValueError):
+        table = np.empty((0, 0))
+    if values is None or table.ndim != 2 or table.size == 0 or not np.isfinite(table).any():
+        return None, ("relative throughput per plane: not recorded in this model (models from "
+                      "'volrecon calibrate' record it)")
+    with np.errstate(invalid="ignore"):
+        per_plane = np.nanmin(np.where(np.isfinite(table), table, np.nan), axis=0)
+    dimmest = int(np.nanargmin(per_plane))
+    rows = f" (lowest of {table.shape[0]} PSFs)" if table.shape[0] > 1 else ""
+    summary = (f"relative throughput per plane{rows} {np.nanmin(per_plane):.2f}-"
+               f"{np.nanmax(per_plane):.2f}, dimmest plane {dimmest} "
+               f"({depth_start_um + depth_step_um * dimmest:g} um): "
+               + " ".join(f"{v:.2f}" for v in per_plane))
+    return per_plane, summary
+
+
 def model_store_layers(path: str | os.PathLike[str]) -> list[LayerData]:
     """A PSF model store as a lazy ``(z, y, x)`` PSF image (and kernels where it has them).
 
@@ -298,7 +342,11 @@ def model_store_layers(path: str | os.PathLike[str]) -> list[LayerData]:
         - lenslet: the responses ``(N, N, Z, Y, X)``, one PSF stack per sub-position of a
           lenslet (sliders for the sub-position's y and x).
         Depth is scaled by the model's depth step and starts at its first depth; y and x by
-        its pixel size (micrometres).
+        its pixel size (micrometres). Where the store records the relative throughput per
+        plane (:func:`model_throughput`), the layer names end in its range, e.g.
+        ``"(throughput 0.41-1.00)"``, and the metadata holds it per plane
+        (``"volrecon_throughput"``) with a one-line summary
+        (``"volrecon_throughput_summary"``).
 
     Raises
     ------
@@ -315,16 +363,23 @@ def model_store_layers(path: str | os.PathLike[str]) -> list[LayerData]:
     space = ["micrometer"] * 3
     zyx = {"scale": [depth_step, pixel, pixel], "translate": [depth_start, 0.0, 0.0],
            "axis_labels": ["z", "y", "x"], "units": space}
+    throughput, summary = model_throughput(stored.parameters, depth_start_um=depth_start,
+                                           depth_step_um=depth_step)
     metadata = {"volrecon_store": os.fspath(stored.path.resolve()), "volrecon_kind": "model",
-                "volrecon_model": stored.attributes}
+                "volrecon_model": stored.attributes,
+                "volrecon_throughput": None if throughput is None else throughput.tolist(),
+                "volrecon_throughput_summary": summary}
     common = {"colormap": "inferno", "metadata": metadata}
+    # The layer list shows the name: the throughput range goes there, the rest in metadata.
+    suffix = "" if throughput is None else (
+        f" (throughput {np.nanmin(throughput):.2f}-{np.nanmax(throughput):.2f})")
     if stored.kind == "depth-convolution":
-        return [(array("psf"), {"name": f"{stem} PSF", **zyx, **common}, "image")]
+        return [(array("psf"), {"name": f"{stem} PSF{suffix}", **zyx, **common}, "image")]
     if stored.kind == "depth-low-rank":
         kernels, weights = array("kernels"), array("weights")
         stack = _expand_low_rank(weights, kernels)
         return [
-            (stack, {"name": f"{stem} PSF", **zyx, **common}, "image"),
+            (stack, {"name": f"{stem} PSF{suffix}", **zyx, **common}, "image"),
             (kernels, {"name": f"{stem} kernels", "scale": [1.0, pixel, pixel],
                        "axis_labels": ["kernel", "y", "x"],
                        "units": ["dimensionless", *space[1:]],
@@ -333,14 +388,16 @@ def model_store_layers(path: str | os.PathLike[str]) -> list[LayerData]:
     if stored.kind == "field-varying":
         kernels = array("kernels")  # (Z, K, Y, X)
         return [(da.moveaxis(kernels, 1, 0), {
-            "name": f"{stem} PSF per field position", "scale": [1.0, depth_step, pixel, pixel],
+            "name": f"{stem} PSF per field position{suffix}",
+            "scale": [1.0, depth_step, pixel, pixel],
             "translate": [0.0, depth_start, 0.0, 0.0],
             "axis_labels": ["field position", "z", "y", "x"], "units": ["dimensionless", *space],
             **common}, "image")]
     if stored.kind == "lenslet":
         responses = da.moveaxis(array("psf"), 0, 2)  # (Z, N, N, Y, X) → (N, N, Z, Y, X)
         return [(responses, {
-            "name": f"{stem} PSF per sub-position", "scale": [1.0, 1.0, depth_step, pixel, pixel],
+            "name": f"{stem} PSF per sub-position{suffix}",
+            "scale": [1.0, 1.0, depth_step, pixel, pixel],
             "translate": [0.0, 0.0, depth_start, 0.0, 0.0],
             "axis_labels": ["sub-position y", "sub-position x", "z", "y", "x"],
             "units": ["dimensionless", "dimensionless", *space], **common}, "image")]

@@ -37,7 +37,12 @@ from volrecon.napari.traces import delta_f_over_f, region_means, write_traces_cs
 if TYPE_CHECKING:
     import napari
 
-__all__ = ["TimeTracesWidget", "Traces", "trace_noise"]
+__all__ = ["REGIONS_HINT", "TimeTracesWidget", "Traces", "trace_noise"]
+
+#: The hint shown while the viewer has no layer to take regions from.
+REGIONS_HINT = ("Regions come from a Points, Shapes or Labels layer: add one with the "
+                "layer-list buttons (New points / New shapes / New labels) and draw on the "
+                "image, or use \"Load regions\" below.")
 
 #: 1 / Φ⁻¹(3/4): turns a median absolute deviation into a Gaussian standard deviation.
 MAD_TO_SIGMA = 1.482602218505602
@@ -138,7 +143,10 @@ class TimeTracesWidget(Container[Widget]):
         self._save_regions_button = PushButton(text="Save regions")
         self._load_regions_button = PushButton(text="Load regions")
         self._message = Label(value="")
-        super().__init__(widgets=[self._image, self._regions, self._radius, self._thickness,
+        #: Shown while the viewer has no layer to take regions from: how to add one.
+        self.hint = Label(value="")
+        super().__init__(widgets=[self.hint, self._image, self._regions, self._radius,
+                                  self._thickness,
                                   self._dff, self._percentile, self._plot_button, self._csv,
                                   self._export_button, self._regions_file,
                                   self._save_regions_button, self._load_regions_button,
@@ -153,6 +161,7 @@ class TimeTracesWidget(Container[Widget]):
         self._percentile.changed.connect(self._redraw)
         for event in (self._viewer.layers.events.inserted, self._viewer.layers.events.removed):
             event.connect(self._refresh_choices)
+        self._show_hint()
         self.job = BackgroundJob(self.native)
         self.traces: Traces | None = None
         #: Noise readout of the traces on the plot (:func:`trace_noise`), one per region.
@@ -174,6 +183,13 @@ class TimeTracesWidget(Container[Widget]):
     def _refresh_choices(self, _event: Any = None) -> None:
         self._image.reset_choices()
         self._regions.reset_choices()
+        self._show_hint()
+
+    def _show_hint(self) -> None:
+        """Say where regions come from while no Points, Shapes or Labels layer exists."""
+        missing = not self._region_choices()
+        self.hint.value = REGIONS_HINT if missing else ""
+        self.hint.visible = missing
 
     # ------------------------------------------------------------------------------- work
     def start(self, _value: Any = None) -> Any:

@@ -76,5 +76,6 @@ def test_many_waves_same_result(job_files, monkeypatch):
     events = []
     run_job(job.with_compute(scheduler="threads", workers=2, frames_per_task=1), restart=True,
             progress=events.append)
-    assert [e.done for e in events] == [0, 3, 6, 9, 12]  # the first: the run's start
+    done = [e.done for e in events]  # the first: the run's start; then as frames commit
+    assert done[0] == 0 and done[-1] == 12 and done == sorted(done) and len(events) >= 5
     assert_bit_identical(read_store_arrays(job.output_path), reference)

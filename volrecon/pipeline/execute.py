@@ -30,7 +30,7 @@ from typing import TYPE_CHECKING, Any
 from volrecon.backend import split_threads
 from volrecon.errors import ConfigError, WorkersLostError
 from volrecon.pipeline.store import FrameRecords
-from volrecon.pipeline.task import run_task
+from volrecon.pipeline.task import STOP, run_task
 
 if TYPE_CHECKING:
     from volrecon.pipeline.config import ComputeSettings
@@ -133,11 +133,20 @@ def _execute_local(tasks: Sequence[TaskSpec], context: TaskContext, compute: Com
     # Passed to this computation only (not registered globally): (start, start_state,
     # pretask, posttask, finish), the form dask.local.get_async takes.
     callbacks = [(None, None, None, posttask, None)]
-    with open_local_scheduler(compute, name="volrecon-task") as kwargs:
-        for first in range(0, len(tasks), wave):
-            graph = [delayed(run_task, pure=False)(shared, spec)
-                     for spec in tasks[first:first + wave]]
-            dask_compute(*graph, callbacks=callbacks, **kwargs)  # type: ignore[no-untyped-call]
+    STOP.clear()
+    try:
+        with open_local_scheduler(compute, name="volrecon-task") as kwargs:
+            try:
+                for first in range(0, len(tasks), wave):
+                    graph = [delayed(run_task, pure=False)(shared, spec)
+                             for spec in tasks[first:first + wave]]
+                    dask_compute(*graph, callbacks=callbacks,  # type: ignore[no-untyped-call]
+                                 **kwargs)
+            except BaseException:
+                STOP.set()  # tasks in this process stop after their current frame
+                raise
+    finally:
+        STOP.clear()
 
 
 @contextlib.contextmanager

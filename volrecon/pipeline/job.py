@@ -21,6 +21,7 @@ import logging
 import os
 import platform
 import socket
+import threading
 import time
 import warnings
 from collections.abc import Callable
@@ -46,6 +47,7 @@ from volrecon.io.fingerprint import fingerprint_file, fingerprint_frames, finger
 from volrecon.io.frames import FrameSource, open_frames, read_image
 from volrecon.pipeline.config import JobConfig, load_job
 from volrecon.pipeline.execute import execute_tasks, fft_threads_per_task
+from volrecon.pipeline.journal import journal_paths, read_journal
 from volrecon.pipeline.lock import StoreLock
 from volrecon.pipeline.plan import plan_tasks
 from volrecon.pipeline.store import (
@@ -69,6 +71,9 @@ logger = logging.getLogger(__name__)
 
 #: Lost dask workers listed one by one in a run's record (all are counted).
 LOST_WORKERS_LISTED = 100
+
+#: Seconds between looks at the running tasks' journals for progress.
+PROGRESS_POLL_S = 1.0
 
 
 @dataclass(frozen=True, eq=False)
@@ -104,7 +109,7 @@ class PreparedJob:
 
 @dataclass(frozen=True)
 class JobProgress:
-    """Where a run stands, passed to the progress callback after each task.
+    """Where a run stands, passed to the progress callback as frames are committed.
 
     Attributes
     ----------
@@ -123,7 +128,7 @@ class JobProgress:
     frames_per_second : float
         This run's throughput.
     seconds_left : float
-        Seconds left at this throughput (``inf`` before the first task ends).
+        Seconds left at this throughput (``inf`` before the first frame is committed).
     """
 
     done: int
@@ -321,7 +326,9 @@ def run_job(job: JobConfig | str | os.PathLike[str], *, restart: bool = False,
         Delete an existing store of this job and start over (only after the new job has been
         checked, and only if the path holds a volrecon output store).
     progress : callable, optional
-        Called with a :class:`JobProgress` after each finished task, in this thread.
+        Called with a :class:`JobProgress` at the start, after each frame the tasks commit
+        (looked for every :data:`PROGRESS_POLL_S` seconds, in a thread of the run) and after
+        each finished task; never two calls at once.
     client : distributed.Client, optional
         Run on this dask.distributed client (e.g. of a dask-jobqueue cluster) instead of
         ``[compute] scheduler``.
@@ -345,7 +352,8 @@ def run_job(job: JobConfig | str | os.PathLike[str], *, restart: bool = False,
         If the store cannot be written (disk full, read-only); frames already marked done
         stay valid and the next run continues.
     KeyboardInterrupt
-        On Ctrl-C; the store stays consistent and the next run continues it.
+        On Ctrl-C; every frame committed so far is recorded (a task stops after the frame it
+        is solving), the store stays consistent and the next run continues it.
 
     Notes
     -----
@@ -458,20 +466,23 @@ def _run(prepared: PreparedJob, store: JobStore, *,
          progress: Callable[[JobProgress], None] | None, client: Any) -> JobResult:
     job = prepared.job
     started = time.time()
+    absorbed = sum(r.stop - r.start for r in store.absorb_journals())
+    if absorbed:
+        logger.info("%s: recorded %d frames committed by an interrupted run", store.path,
+                    absorbed)
     status = store.status()
-    done_before = int(np.count_nonzero(status != STATUS_PENDING))
-    failed = int(np.count_nonzero(status == STATUS_FAILED))
     removed = store.remove_partial_files()
     if removed:
         logger.info("%s: removed %d partial files of an interrupted write", store.path, removed)
     fft_threads = fft_threads_per_task(job.compute)
     runs = list(store.attributes.get("runs", []))
+    tally = _Tally(store, status, progress)
     run_record: dict[str, Any] = {
         "started": _now(), "started_epoch_s": started, "host": socket.gethostname(),
         "pid": os.getpid(), "scheduler": job.compute.scheduler if client is None else "client",
         "workers": job.compute.workers, "frames_per_task": job.compute.frames_per_task,
         "device": job.compute.device, "fft_threads": fft_threads,
-        "frames_done_before": done_before, "outcome": "running"}
+        "frames_done_before": tally.done_before, "outcome": "running"}
     store.update_attributes(runs=[*runs, run_record])
     tasks = plan_tasks(status, chain_frames=job.solver.chain_frames,
                        frames_per_task=job.compute.frames_per_task,
@@ -482,27 +493,6 @@ def _run(prepared: PreparedJob, store: JobStore, *,
         model_fingerprint=prepared.fingerprints["model.path"], solver=job.solver,
         device=job.compute.device, fft_threads=fft_threads,
         store_path=os.fspath(store.path), projections=job.max_projections)
-    total = store.n_frames
-    counts = {"done": done_before, "failed": failed, "computed": 0}
-    compute_started = time.perf_counter()
-
-    def on_result(records: FrameRecords) -> None:
-        old = status[records.start:records.stop]
-        store.record(records)
-        newly = int(np.count_nonzero(old == STATUS_PENDING))
-        counts["done"] += newly
-        counts["computed"] += records.stop - records.start
-        counts["failed"] += int(np.count_nonzero(records.status == STATUS_FAILED)) - int(
-            np.count_nonzero(old == STATUS_FAILED))
-        status[records.start:records.stop] = records.status
-        if progress is not None:
-            elapsed = time.perf_counter() - compute_started
-            rate = counts["computed"] / elapsed if elapsed > 0 else 0.0
-            seconds_left = (total - counts["done"]) / rate if rate > 0 else float("inf")
-            progress(JobProgress(done=counts["done"], done_at_start=done_before, total=total,
-                                 failed=counts["failed"],
-                                 computed=counts["computed"], elapsed_s=elapsed,
-                                 frames_per_second=rate, seconds_left=seconds_left))
 
     def on_lost_worker(lost: LostWorker) -> None:
         # Recorded at once, so that `volrecon status` shows it while the run goes on.
@@ -515,14 +505,11 @@ def _run(prepared: PreparedJob, store: JobStore, *,
 
     outcome = "error"
     failure: BaseException | None = None
-    if progress is not None:  # the bar (or log line) from the start, not after a first task
-        progress(JobProgress(done=done_before, done_at_start=done_before, total=total,
-                             failed=failed, computed=0, elapsed_s=0.0, frames_per_second=0.0,
-                             seconds_left=float("inf")))
+    tally.start()  # the bar (or log line) from the start, then after every committed frame
     try:
-        execute_tasks(tasks, context, job.compute, on_result, client=client,
+        execute_tasks(tasks, context, job.compute, tally.on_result, client=client,
                       on_lost_worker=on_lost_worker)
-        outcome = "complete" if counts["done"] == total else "stopped"
+        outcome = "complete" if tally.done == store.n_frames else "stopped"
         if run_record.get("lost_worker_count"):
             store.remove_partial_files()  # left by workers killed mid-write; all tasks ended
     except BaseException as exc:
@@ -531,10 +518,13 @@ def _run(prepared: PreparedJob, store: JobStore, *,
             outcome = "interrupted"
         raise
     finally:
+        tally.stop()
         ended = time.time()
-        run_record.update(ended=_now(), ended_epoch_s=ended, outcome=outcome,
-                          frames_done_after=counts["done"], frames_computed=counts["computed"])
         try:
+            if failure is not None:  # keep every frame the stopped tasks committed
+                tally.absorb()
+            run_record.update(ended=_now(), ended_epoch_s=ended, outcome=outcome,
+                              frames_done_after=tally.done, frames_computed=tally.computed)
             store.update_attributes(runs=[*runs, run_record])
         except OSError as exc:
             if failure is None:
@@ -542,9 +532,119 @@ def _run(prepared: PreparedJob, store: JobStore, *,
             # The disk that made the run fail often refuses this record too: the first error
             # is the one to report, and the store stays consistent without the record.
             logger.warning("%s: could not record the end of the run (%s)", store.path, exc)
-    return JobResult(store_path=store.path, total=total, done=counts["done"],
-                     failed=counts["failed"], computed=counts["computed"],
+    return JobResult(store_path=store.path, total=tally.total, done=tally.done,
+                     failed=tally.failed, computed=tally.computed,
                      seconds=time.time() - started)
+
+
+class _Tally:
+    """A run's counts, recorded and committed, and its progress callback.
+
+    Frames count as they are committed inside tasks (their journals, read every
+    :data:`PROGRESS_POLL_S` seconds by a thread of its own), not only when a task ends, so
+    progress and time left move from the first frame on; throughput is from wall time.
+    """
+
+    def __init__(self, store: JobStore, status: np.ndarray,
+                 progress: Callable[[JobProgress], None] | None) -> None:
+        self._store = store
+        self._status = status  # the driver's copy of the recorded status
+        self._progress = progress
+        self.total = int(status.shape[0])
+        self.done_before = int(np.count_nonzero(status != STATUS_PENDING))
+        self._done = self.done_before
+        self._failed = int(np.count_nonzero(status == STATUS_FAILED))
+        self._computed = 0
+        self._journaled = (0, 0, 0)  # committed, not recorded: new, new failed, all
+        self._lock = threading.Lock()
+        self._quit = threading.Event()
+        self._thread: threading.Thread | None = None
+        self._started = time.perf_counter()
+
+    @property
+    def done(self) -> int:
+        return self._done
+
+    @property
+    def failed(self) -> int:
+        return self._failed
+
+    @property
+    def computed(self) -> int:
+        return self._computed
+
+    def start(self) -> None:
+        """Show the starting point and begin watching the journals."""
+        self._started = time.perf_counter()
+        if self._progress is None:
+            return
+        self._emit()
+        self._thread = threading.Thread(target=self._watch, name="volrecon-progress",
+                                        daemon=True)
+        self._thread.start()
+
+    def stop(self) -> None:
+        self._quit.set()
+        if self._thread is not None:
+            self._thread.join()
+
+    def on_result(self, records: FrameRecords) -> None:
+        """Record a finished task (diagnostics, then status), drop its journal, report."""
+        with self._lock:
+            self._store.record(records)
+            self._store.drop_journal(records.start, records.stop)
+            self._count(records)
+            self._journaled = self._read_journals()
+            self._emit()
+
+    def absorb(self) -> None:
+        """Record what stopped tasks committed (after an interrupted or failed run)."""
+        with self._lock:
+            for records in self._store.absorb_journals():
+                self._count(records)
+            self._journaled = (0, 0, 0)
+
+    def _count(self, records: FrameRecords) -> None:
+        old = self._status[records.start:records.stop]
+        self._done += int(np.count_nonzero(old == STATUS_PENDING))
+        self._computed += records.stop - records.start
+        self._failed += int(np.count_nonzero(records.status == STATUS_FAILED)) - int(
+            np.count_nonzero(old == STATUS_FAILED))
+        self._status[records.start:records.stop] = records.status
+
+    def _read_journals(self) -> tuple[int, int, int]:
+        new = new_failed = every = 0
+        for path in journal_paths(self._store.path):
+            for entry in read_journal(path):
+                t = int(entry["t"])
+                if not 0 <= t < self.total:
+                    continue
+                every += 1
+                if self._status[t] == STATUS_PENDING:
+                    new += 1
+                    new_failed += int(entry["status"]) == STATUS_FAILED
+        return new, new_failed, every
+
+    def _watch(self) -> None:
+        while not self._quit.wait(PROGRESS_POLL_S):
+            with self._lock:
+                journaled = self._read_journals()
+                if journaled != self._journaled:
+                    self._journaled = journaled
+                    self._emit()
+
+    def _emit(self) -> None:
+        if self._progress is None:
+            return
+        new, new_failed, every = self._journaled
+        done, computed = self._done + new, self._computed + every
+        elapsed = time.perf_counter() - self._started
+        rate = computed / elapsed if elapsed > 0 and computed else 0.0
+        self._progress(JobProgress(
+            done=done, done_at_start=self.done_before, total=self.total,
+            failed=self._failed + new_failed, computed=computed, elapsed_s=elapsed,
+            frames_per_second=rate,
+            seconds_left=(self.total - done) / rate if rate > 0 else float("inf")))
 
 
 def _now() -> str:

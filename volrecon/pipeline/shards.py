@@ -23,8 +23,8 @@ import numpy as np
 
 from volrecon.errors import ConfigError
 
-__all__ = ["FrameWriter", "ShardBuffer", "is_sharded", "shard_count", "shard_file",
-           "shard_frames_of"]
+__all__ = ["FrameWriter", "ShardBuffer", "frame_files", "is_sharded", "shard_count",
+           "shard_file", "shard_frames_of"]
 
 #: An inner chunk that holds nothing (only the fill value): offset and length both 2**64 - 1.
 _EMPTY = np.uint64(2**64 - 1)
@@ -45,6 +45,16 @@ def shard_file(store_path: str | os.PathLike[str], array: Any, t: int) -> Path:
     coords = (t // shard_frames_of(array), *(0,) * (array.ndim - 1))
     return Path(store_path).joinpath(*array.path.split("/"),
                                      *array.metadata.encode_chunk_key(coords).split("/"))
+
+
+def frame_files(store_path: str | os.PathLike[str], array: Any, t: int) -> list[Path]:
+    """The files holding frame `t` of the frame array `array` (whether they exist or not: a
+    chunk equal to the fill value is never written): its chunks, or its shard file."""
+    if is_sharded(array):
+        return [shard_file(store_path, array, t)]
+    root = Path(store_path).joinpath(*array.path.split("/"))
+    return [root.joinpath(*array.metadata.encode_chunk_key((t, *rest)).split("/"))
+            for rest in np.ndindex(*array.cdata_shape[1:])]
 
 
 def _memory_array(shape: tuple[int, ...], chunks: tuple[int, ...], dtype: Any, fill: Any,
@@ -194,17 +204,25 @@ class FrameWriter:
         self._shard_frames = shard_frames_of(array)
         self._buffer: ShardBuffer | None = None
 
-    def write(self, t: int, frame: np.ndarray) -> None:
-        """Write frame `t` (or keep it encoded until its shard is complete)."""
+    def write(self, t: int, frame: np.ndarray) -> list[int]:
+        """Write frame `t` (or keep it encoded until its shard is complete); return the
+        frames whose files this call wrote (``[t]``, a whole shard's frames, or none yet)."""
         if not is_sharded(self._array):
             self._array[t] = frame
-            return
+            return [t]
         if self._buffer is None:
             self._buffer = ShardBuffer(self._store_path, self._array, t // self._shard_frames)
         self._buffer.add(t, frame)
-        if self._buffer.complete:
-            self._buffer.write()
-            self._buffer = None
+        if not self._buffer.complete:
+            return []
+        self._buffer.write()
+        written = list(range(self._buffer.start, self._buffer.stop))
+        self._buffer = None
+        return written
+
+    def files(self, t: int) -> list[Path]:
+        """The files holding frame `t` of this array (:func:`frame_files`)."""
+        return frame_files(self._store_path, self._array, t)
 
     def check_written(self) -> None:
         """Raise if a shard was left incomplete (the task did not cover whole shards)."""

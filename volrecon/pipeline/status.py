@@ -111,7 +111,7 @@ def store_status(path: str | os.PathLike[str]) -> StoreStatus:
         total = int(attributes.get("video", {}).get("n_frames", 0))
         return StoreStatus(path=path, total=total, done=0, failed=0, running=running,
                            holder=holder)
-    status = store.status()
+    status = store.committed_status()  # with frames running tasks have committed
     last_verify = store.attributes.get("last_verify")
     done = int(np.count_nonzero(status != STATUS_PENDING))
     failed = int(np.count_nonzero(status == STATUS_FAILED))

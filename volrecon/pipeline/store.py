@@ -8,6 +8,7 @@ Layout (zarr v3; attributes in ``schemas/output-store.schema.json``; for users i
                                        format 3: shards of shard_frames frames (one file each)
       diagnostics/                     group; attribute "failures" {frame: reason}
         status      (T,) uint8         0 pending, 1 done, 2 failed — written last, by the driver
+          commits/<start>-<stop>.jsonl   a running task's per-frame commits (pipeline/journal.py)
         iterations  (T,) int32
         objective   (T,) float64
         residual    (T,) float64       |Av - b| / |b|
@@ -24,7 +25,10 @@ reader still reads one frame's bytes (through the shard's index); the task ownin
 frames writes the file whole, once (:mod:`volrecon.pipeline.shards`). ``shard_frames = 1`` (and
 every format 1 and 2 store) keeps one file per chunk.
 The diagnostics arrays are written only by the driver, after a task's volumes are on disk:
-a frame's ``status`` turns non-zero only when its data is complete.
+a frame's ``status`` turns non-zero only when its data is complete. Inside a task each frame
+is committed on its own once its files are fsynced, as a line of the task's journal, which the
+driver folds into the diagnostics (:mod:`volrecon.pipeline.journal`), so a kill loses only the
+frames in flight.
 
 Every chunk carries a CRC32C checksum after its zstd bytes (store format 2;
 :func:`volrecon.io.ome_zarr.chunk_codecs`), so reading a damaged chunk raises instead of
@@ -44,7 +48,7 @@ import os
 import re
 import shutil
 import time
-from collections.abc import Iterable, Iterator, Mapping
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal
@@ -60,7 +64,8 @@ from volrecon.io.ome_zarr import (
     shard_shape,
 )
 from volrecon.io.zarr_groups import group_attributes
-from volrecon.pipeline.shards import is_sharded, shard_count, shard_file, shard_frames_of
+from volrecon.pipeline.journal import journal_path, journal_paths, read_journal
+from volrecon.pipeline.shards import frame_files, shard_count, shard_frames_of
 
 __all__ = [
     "DIAGNOSTICS",
@@ -74,6 +79,7 @@ __all__ = [
     "FrameRecords",
     "JobStore",
     "creation_interrupted",
+    "fsync_tree",
     "is_job_store",
     "is_vacant",
     "level_paths",
@@ -476,6 +482,33 @@ class JobStore:
         self._diagnostics["status"][region] = records.status
         self.sync(self.diagnostics_chunk_paths(region, only=("status",)))
 
+    def committed_status(self) -> np.ndarray:
+        """:meth:`status` with the frames that running (or killed) tasks have committed in
+        their journals (:mod:`volrecon.pipeline.journal`) but the driver has not yet
+        recorded: what a kill at this moment would keep."""
+        status = self.status()
+        for path in journal_paths(self.path):
+            for entry in read_journal(path):
+                if 0 <= int(entry["t"]) < len(status):
+                    status[int(entry["t"])] = int(entry["status"])
+        return status
+
+    def absorb_journals(self) -> list[FrameRecords]:
+        """Record every frame committed in a task journal (:meth:`record`), then delete the
+        journal; returns what was recorded. Only the driver calls this, when no task of its
+        run is still writing (at a run's start and end)."""
+        recorded = []
+        for path in journal_paths(self.path):
+            for records in _journal_records(read_journal(path), self.n_frames):
+                self.record(records)
+                recorded.append(records)
+            path.unlink(missing_ok=True)
+        return recorded
+
+    def drop_journal(self, start: int, stop: int) -> None:
+        """Delete the journal of the task of frames ``start:stop`` (after :meth:`record`)."""
+        journal_path(self.path, start, stop).unlink(missing_ok=True)
+
     def mark_pending(self, frames: Iterable[int], *,
                      damaged_chunks: Iterable[str | os.PathLike[str]] = ()) -> None:
         """Mark `frames` pending so the next run recomputes them, and delete damaged chunks.
@@ -533,17 +566,11 @@ class JobStore:
                                   *array.metadata.encode_chunk_key(coords).split("/"))
 
     def frame_chunk_paths(self, t: int) -> list[Path]:
-        """The files holding frame `t` in ``"0"`` and the projections (whether they exist
-        or not: a chunk equal to the fill value is never written): its chunks, or the shard
-        file of a sharded array."""
-        paths = []
-        for array in self.frame_arrays().values():
-            if is_sharded(array):
-                paths.append(shard_file(self.path, array, t))
-            else:
-                paths += [self.chunk_path(array, (t, *rest))
-                          for rest in _grid(array.cdata_shape[1:])]
-        return paths
+        """The files holding frame `t` in every frame array (whether they exist or not: a
+        chunk equal to the fill value is never written): its chunks, or the shard file of a
+        sharded array (:func:`volrecon.pipeline.shards.frame_files`)."""
+        return [path for array in self.frame_arrays().values()
+                for path in frame_files(self.path, array, t)]
 
     def diagnostics_chunk_paths(self, region: slice, *, only: Iterable[str] | None = None,
                                 skip: Iterable[str] = ()) -> list[Path]:
@@ -560,7 +587,7 @@ class JobStore:
     def sync(self, paths: Iterable[Path]) -> None:
         """fsync each existing file of `paths`, then each folder from theirs up to the store
         (new folders' entries live in their parents)."""
-        _fsync_tree(paths, self.path)
+        fsync_tree(paths, self.path)
 
     def diagnostics(self) -> dict[str, np.ndarray]:
         """All per-frame diagnostics as arrays ``(T,)``."""
@@ -626,9 +653,25 @@ def level_paths(group: Any, path: str | os.PathLike[str]) -> list[str]:
     return [str(level) for level in range(1, _level_count(group.attrs.asdict(), path))]
 
 
-def _grid(shape: tuple[int, ...]) -> Iterator[tuple[int, ...]]:
-    """Every index of an array of `shape`, in C order."""
-    yield from (tuple(int(i) for i in index) for index in np.ndindex(*shape))
+def _journal_records(entries: list[dict[str, Any]], n_frames: int) -> list[FrameRecords]:
+    """Journal entries as :class:`FrameRecords`, one per run of consecutive frames (the last
+    entry of a frame wins)."""
+    by_frame = {int(e["t"]): e for e in entries if 0 <= int(e["t"]) < n_frames}
+    frames = sorted(by_frame)
+    runs: list[list[int]] = []
+    for t in frames:
+        if runs and runs[-1][-1] == t - 1:
+            runs[-1].append(t)
+        else:
+            runs.append([t])
+    out = []
+    for run in runs:
+        values = {name: np.array([by_frame[t][name] for t in run], dtype=dtype)
+                  for name, (dtype, _) in DIAGNOSTICS.items()}
+        failures = {t: str(by_frame[t]["failure"]) for t in run
+                    if by_frame[t].get("failure") is not None}
+        out.append(FrameRecords(start=run[0], stop=run[-1] + 1, failures=failures, **values))
+    return out
 
 
 def _delete(paths: Iterable[Path]) -> None:
@@ -636,7 +679,7 @@ def _delete(paths: Iterable[Path]) -> None:
         path.unlink(missing_ok=True)
 
 
-def _fsync_tree(paths: Iterable[Path], root: Path) -> None:
+def fsync_tree(paths: Iterable[Path], root: Path) -> None:
     """fsync the files of `paths` that exist, then every folder from theirs up to `root`.
 
     The calls run side by side in a few threads: a journaling file system then commits them

@@ -10,20 +10,24 @@ from __future__ import annotations
 
 import collections
 import logging
+import threading
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
 from functools import lru_cache
+from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from volrecon.io.ome_zarr import IMAGE_PATH, downsample_yx
+from volrecon.pipeline.journal import FrameJournal
 from volrecon.pipeline.shards import FrameWriter
 from volrecon.pipeline.store import (
     PROJECTIONS,
     STATUS_DONE,
     STATUS_FAILED,
     FrameRecords,
+    fsync_tree,
     level_paths,
     max_projections,
 )
@@ -35,13 +39,21 @@ if TYPE_CHECKING:
     from volrecon.models.base import PSFModel
     from volrecon.solvers.settings import SolverSettings
 
-__all__ = ["TaskContext", "TaskSpec", "run_task"]
+__all__ = ["STOP", "TaskContext", "TaskSpec", "TaskStopped", "run_task"]
 
 logger = logging.getLogger(__name__)
 
 #: Finished volumes queued for a task's writer thread at most; a solver this far ahead
 #: waits, so memory stays flat.
 WRITE_QUEUE_FRAMES = 4
+
+#: Set by the driver on Ctrl-C: tasks running in its own process (threads, synchronous) stop
+#: after the frame they are solving, keeping every frame committed so far.
+STOP = threading.Event()
+
+
+class TaskStopped(Exception):
+    """A task ended early because :data:`STOP` was set; its committed frames are kept."""
 
 
 @dataclass(frozen=True)
@@ -133,10 +145,18 @@ def run_task(context: TaskContext, spec: TaskSpec) -> FrameRecords:
     task returns only after every write has finished, so the driver's record of its frames
     always follows their data.
 
+    Each frame is committed as soon as its files are on disk (fsynced; in a sharded store,
+    once its shard file is written): one line in the task's journal
+    (:mod:`volrecon.pipeline.journal`), which the driver folds into the diagnostics, so a kill
+    or Ctrl-C loses only the frames in flight.
+
     Raises
     ------
     InputFileError
         If the raw frames cannot be read.
+    TaskStopped
+        If :data:`STOP` was set (Ctrl-C in the driver's process): after the frame being
+        solved is written and committed.
     """
     import zarr
 
@@ -165,15 +185,27 @@ def run_task(context: TaskContext, spec: TaskSpec) -> FrameRecords:
                                   context.first_frame + chain_stop)
         return context.correction.apply(raw)
 
-    def write(t: int, volume: np.ndarray) -> None:
-        writers[IMAGE_PATH].write(t, volume)
+    journal = FrameJournal(context.store_path, spec.start, spec.stop)
+    waiting: dict[int, dict[str, Any]] = {}  # written to some arrays, not yet committed
+    written: collections.Counter[int] = collections.Counter()
+
+    def write(t: int, volume: np.ndarray, entry: dict[str, Any]) -> None:
+        """Write frame `t` everywhere, then commit every frame now wholly on disk."""
+        waiting[t] = entry
+        done = writers[IMAGE_PATH].write(t, volume)
         level = volume
         for key in levels:
             level = downsample_yx(level)
-            writers[key].write(t, level)
+            done += writers[key].write(t, level)
         if context.projections:
             for name, projected in max_projections(volume).items():
-                writers[name].write(t, projected)
+                done += writers[name].write(t, projected)
+        written.update(done)
+        ready = sorted(f for f in set(done) if written[f] == len(writers))
+        if ready:
+            fsync_tree(dict.fromkeys(path for f in ready for w in writers.values()
+                                     for path in w.files(f)), Path(context.store_path))
+            journal.commit([waiting.pop(f) for f in ready])
 
     # One thread reads (and corrects) the next chain's frames while this one solves, another
     # encodes and writes the finished frames in order; at most WRITE_QUEUE_FRAMES volumes wait
@@ -220,14 +252,23 @@ def run_task(context: TaskContext, spec: TaskSpec) -> FrameRecords:
                 if t == chain_start and lead_in_seconds > 0:  # on the chain's first frame
                     records["seconds"][i] = lead_in_seconds + np.nan_to_num(
                         records["seconds"][i])
-                writes.append(writer.submit(write, t, volume))
+                entry = {"t": t, "failure": failures.get(t),
+                         **{name: values[i] for name, values in records.items()}}
+                writes.append(writer.submit(write, t, volume, entry))
                 while len(writes) > WRITE_QUEUE_FRAMES:
                     writes.popleft().result()
+                if STOP.is_set():
+                    break
+            if STOP.is_set():
+                break
         while writes:
             writes.popleft().result()
     finally:
         reader.shutdown(wait=True, cancel_futures=True)
         writer.shutdown(wait=True, cancel_futures=True)
+        journal.close()
+    if STOP.is_set():
+        raise TaskStopped(f"task {spec.index} stopped on request")
     for frame_writer in writers.values():
         frame_writer.check_written()
     return FrameRecords(start=spec.start, stop=spec.stop, failures=failures, **records)

@@ -79,6 +79,56 @@ def test_compact_responses_use_a_smaller_lattice_grid_and_stay_exact(rng, reach_
     dot_test(model, rng=rng, rtol=1e-10)
 
 
+
+@pytest.mark.parametrize("reach_yx, tiles_yx", [
+    (((-2, 2), (-1, 3)), (3, 2)),   # taps on both sides of the centre
+    (((1, 3), (-3, -1)), (2, 4)),   # taps only below / only left of the centre
+    (((0, 0), (-1, 1)), (8, 1)),    # one tap along y: tiles that do not overlap
+])
+def test_overlap_save_tiles_match_scipy(rng, reach_yx, tiles_yx):
+    nz, n, ny, nx = 2, 3, 47, 50
+    y0, x0 = n * ((ny // 2) // n), n * ((nx // 2) // n)
+    (ya, yb), (xa, xb) = reach_yx
+    psf = np.zeros((nz, n, n, ny, nx))
+    window = (slice(y0 + n * ya, y0 + n * (yb + 1)), slice(x0 + n * xa, x0 + n * (xb + 1)))
+    psf[..., window[0], window[1]] = rng.random(psf[..., window[0], window[1]].shape)
+    volume = rng.random((nz, ny, nx))
+    model = LensletPSF(psf, GEOMETRY, dtype=np.float64, tiles_yx=tiles_yx)
+    assert model.tiles_yx == tiles_yx
+    # The tile grid only has to hold a tile and the taps' span, not the whole lattice.
+    assert model.tile_grid_shape[0] < model.lattice_padded_shape[0]
+    # Reference: scipy.signal.fftconvolve per sub-position; float64 agrees to rounding.
+    expected = _reference_forward(volume, psf)
+    got = model.forward(volume)
+    assert np.linalg.norm(got - expected) / np.linalg.norm(expected) < 1e-10
+    dot_test(model, rng=rng, rtol=1e-10)
+    # The tiling survives a change of backend and pickling.
+    assert model.on_device("cpu", threads=1).tiles_yx == tiles_yx
+    assert pickle.loads(pickle.dumps(model)).tiles_yx == tiles_yx
+
+
+def test_tiles_follow_the_sensor_size_and_bound_the_spectra(rng):
+    # Responses within ±2 lenslets on a 1000² sensor: in one piece the matrices would hold
+    # Z·N⁴·G·(G//2+1) complex numbers on G ≥ Q + 2 = 202 (about 40 MB here), tiles keep them
+    # on a grid of a few tile lengths.
+    nz, n, size = 1, 5, 1000
+    psf = np.zeros((nz, n, n, size, size), np.float32)
+    y0 = n * ((size // 2) // n)
+    psf[..., y0 - 2 * n : y0 + 3 * n, y0 - 2 * n : y0 + 3 * n] = 1.0
+    model = LensletPSF(psf, GEOMETRY)
+    assert min(model.tiles_yx) > 1
+    assert max(model.tile_grid_shape) < model.lattice_padded_shape[0] // 2
+    # Known truth: a point at the block origin gives its response unshifted.
+    point = np.zeros(model.shape_in, np.float32)
+    point[0, y0 + 1, y0 + 2] = 1.0
+    np.testing.assert_allclose(model.forward(point), psf[0, 1, 2], atol=1e-5)
+
+
+def test_tiles_that_do_not_cut_the_axis_are_refused(rng):
+    psf = rng.random((1, 2, 2, 8, 8))
+    with pytest.raises(ConfigError, match="tiles_yx"):
+        LensletPSF(psf, GEOMETRY, tiles_yx=(9, 1))
+
 def test_point_responses_repeat_with_the_pitch(rng):
     psf = rng.random((2, 3, 3, 14, 16)).astype(np.float32)
     model = LensletPSF(psf, GEOMETRY)

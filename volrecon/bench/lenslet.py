@@ -5,10 +5,11 @@ few sizes (random non-negative responses within ±2 lenslets of the point: the c
 depend on the values) and prints, per size:
 
 - ``forward + adjoint`` against the coarse transforms they cannot avoid: Z·N² forward and
-  N² inverse real FFTs of the model's lattice grid (:attr:`LensletPSF.lattice_padded_shape`,
+  N² inverse real FFTs of the whole lattice grid (:attr:`LensletPSF.lattice_padded_shape`,
   sized to the responses' reach) for the forward, N² forward and Z·N² inverse for the
-  adjoint (target: at most 2×). The rest is the per-frequency products with the Z·N² × N²
-  spectrum matrices, bound by reading them from memory: their share grows as N²;
+  adjoint (target: at most 2×), whatever tiling the model chose (:attr:`LensletPSF.tiles_yx`,
+  in the JSON). The rest is the per-frequency products with the Z·N² × N² spectrum
+  matrices, bound by reading them from memory: their share grows as N²;
 - the same against the FFT bound of a shift-invariant model of the same volume (Z forward +
   Z inverse real FFTs of the full padded grid, :func:`volrecon.bench.iteration.fft_lower_bound`);
 - FISTA and RL seconds per iteration (long minus short solve) against that FFT bound.
@@ -108,7 +109,8 @@ def run(sizes: Sequence[tuple[int, int, int]] = SIZES, *, threads: int | None = 
         coarse = coarse_transform_seconds(model)
         bound = fft_lower_bound(model)
         record: dict[str, Any] = {
-            "size_znyx": [nz, pitch, size, size], "apply_seconds": apply,
+            "size_znyx": [nz, pitch, size, size], "tiles_yx": list(model.tiles_yx),
+            "apply_seconds": apply,
             "coarse_transform_seconds": coarse, "fft_bound_seconds": bound,
             "apply_over_coarse": apply / coarse, "apply_over_fft_bound": apply / bound,
             "target": TARGET, "per_iteration": {}}

@@ -8,7 +8,7 @@ tuning it takes tens of seconds, so both are shared by the session.
 from __future__ import annotations
 
 import pytest
-from tunebench import QUICK, Bench, make_bench
+from tunebench import JOB_TEXT, QUICK, Bench, make_bench
 
 from volrecon.tune import TuneResult, tune_job
 
@@ -24,3 +24,12 @@ def dim_bench(tmp_path_factory: pytest.TempPathFactory) -> Bench:
 def dim_tuned(dim_bench: Bench) -> TuneResult:
     """`tune_job` on the photon-starved bench, without ground truth."""
     return tune_job(dim_bench.job_path, **QUICK)
+
+
+@pytest.fixture(scope="session")
+def temporal_tuned(dim_bench: Bench) -> TuneResult:
+    """`tune_job` on the photon-starved bench with windows of 4 frames."""
+    path = dim_bench.job_path.with_name("job-temporal.toml")
+    path.write_text(JOB_TEXT.replace("tv = 0.5\n", "tv = 0.5\ntemporal_window = 4\n"),
+                    encoding="utf-8")
+    return tune_job(path, **QUICK)

@@ -7,11 +7,10 @@ import json
 import tomllib
 from pathlib import Path
 
-import pytest
-from tunebench import JOB_TEXT, QUICK, Bench
+from tunebench import Bench
 
 from volrecon.pipeline import load_job
-from volrecon.tune import TuneResult, tune_job, write_report, write_tuned_job
+from volrecon.tune import TuneResult, write_report, write_tuned_job
 
 COMMENTED_JOB = """\
 # Our overnight recording.  Keep this note!
@@ -36,15 +35,6 @@ time_interval_s = 0.05
 scheduler = "threads"
 workers = 2
 """
-
-
-@pytest.fixture(scope="module")
-def temporal_tuned(dim_bench: Bench) -> TuneResult:
-    """`tune_job` on the photon-starved bench with windows of 4 frames."""
-    path = dim_bench.job_path.with_name("job-temporal.toml")
-    path.write_text(JOB_TEXT.replace("tv = 0.5\n", "tv = 0.5\ntemporal_window = 4\n"),
-                    encoding="utf-8")
-    return tune_job(path, **QUICK)
 
 
 def test_comments_and_key_order_survive(dim_bench: Bench, dim_tuned: TuneResult):

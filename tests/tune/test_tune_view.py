@@ -36,3 +36,20 @@ def test_viewer_opens_on_the_chosen_setting(dim_tuned: TuneResult):
     metadata = added[0].metadata
     assert metadata["tv"][step[0]] == pytest.approx(dim_tuned.chosen.tv)
     assert metadata["l1"][step[1]] == pytest.approx(dim_tuned.chosen.l1)
+
+
+def test_temporal_sweep_is_a_layer_of_every_weight(temporal_tuned: TuneResult):
+    sweep = temporal_tuned.temporal
+    assert sweep is not None
+    *_, (volumes, kwargs, kind) = sweep_layers(temporal_tuned)
+    assert kind == "image" and not kwargs["visible"]
+    assert kwargs["axis_labels"] == ["temporal_weight", "frame", "z", "y", "x"]
+    run = len(sweep.run_frames) // 2
+    assert volumes.shape == (len(sweep.cells), *sweep.cells[0].volumes[run].shape)
+    for k, cell in enumerate(sweep.cells):
+        np.testing.assert_array_equal(volumes[k], cell.volumes[run])
+    metadata = kwargs["metadata"]
+    assert metadata["temporal_weight"][metadata["chosen_step"][0]] == sweep.chosen.weight
+    assert len(metadata["video_frames"]) == volumes.shape[1]
+    viewer = napari.components.ViewerModel()
+    assert len(add_sweep_layers(viewer, temporal_tuned)) == 5

@@ -5,12 +5,14 @@
 ``(tv, l1, z, y, x)`` of the middle tuning frame, so the viewer's first two sliders step
 through the weights (a setting the sweep did not try shows as an empty volume); the chosen
 volume and the unregularised one at the chosen iteration count follow as their own layers,
-then the corrected camera frame.
+then the corrected camera frame. With a temporal sweep (``temporal_window > 1``) a last,
+hidden layer ``(temporal_weight, frame, z, y, x)`` holds the kept frames of the middle run
+for every temporal weight tried (turn it on and step its first two sliders).
 """
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -39,7 +41,8 @@ def sweep_layers(result: TuneResult) -> list[LayerData]:
     -------
     list of (data, kwargs, "image")
         The sweep ``(tv, l1, Z, Y, X)``, the chosen and the unregularised volume
-        ``(Z, Y, X)``, the corrected frame ``(1, Y, X)``; depth, rows and columns in
+        ``(Z, Y, X)``, the corrected frame ``(1, Y, X)``, and with a temporal sweep its
+        ``(weights, frames, Z, Y, X)`` (hidden); depth, rows and columns in
         micrometres. The sweep layer's ``metadata`` lists the weights of each slider step
         (``tv``, ``l1``, in job-file units and in units of ``u``).
     """
@@ -79,7 +82,29 @@ def sweep_layers(result: TuneResult) -> list[LayerData]:
             "name": f"corrected frame {frame}", "scale": scale, "translate": translate,
             "units": _UNITS3, "axis_labels": ["z", "y", "x"], "visible": False}, "image"),
     ]
+    if result.temporal is not None:
+        layers.append(_temporal_layer(result, common, scale, translate))
     return layers
+
+
+def _temporal_layer(result: TuneResult, common: dict[str, Any], scale: list[float],
+                    translate: list[float]) -> LayerData:
+    """The temporal sweep: the middle run's kept (even) frames for every weight tried."""
+    sweep = result.temporal
+    assert sweep is not None
+    run = len(sweep.run_frames) // 2
+    volumes = np.stack([cell.volumes[run] for cell in sweep.cells]).astype(np.float32)
+    first = sweep.run_frames[run]
+    return (volumes, {
+        **common, "name": f"tune temporal sweep, video frames {first}-"
+        f"{first + sweep.run_length - 1} (temporal_weight, kept frame)", "visible": False,
+        "scale": [1.0, 1.0, *scale], "translate": [0.0, 0.0, *translate],
+        "units": ["", "", *_UNITS3],
+        "axis_labels": ["temporal_weight", "frame", "z", "y", "x"],
+        "metadata": {"temporal_weight": [c.weight for c in sweep.cells],
+                     "temporal_weight_units": [c.weight_units for c in sweep.cells],
+                     "video_frames": list(range(first, first + sweep.run_length, 2)),
+                     "chosen_step": [sweep.index, 0]}}, "image")
 
 
 def add_sweep_layers(viewer: napari.Viewer | napari.components.ViewerModel,

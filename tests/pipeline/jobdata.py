@@ -140,3 +140,12 @@ def assert_bit_identical(a: dict[str, np.ndarray], b: dict[str, np.ndarray]) -> 
             frames = [t for t in range(a[key].shape[0])
                       if a[key][t].tobytes() != b[key][t].tobytes()]
             raise AssertionError(f"{key} differs at frames {frames}")
+
+
+def sleep_then_pid(seconds: float) -> int:
+    """A task for scheduler tests: wait, then say which process ran it."""
+    import os
+    import time
+
+    time.sleep(seconds)
+    return os.getpid()

@@ -79,3 +79,20 @@ def test_many_waves_same_result(job_files, monkeypatch):
     done = [e.done for e in events]  # the first: the run's start; then as frames commit
     assert done[0] == 0 and done[-1] == 12 and done == sorted(done) and len(events) >= 5
     assert_bit_identical(read_store_arrays(job.output_path), reference)
+
+
+def test_process_workers_each_take_a_task():
+    # dask's process scheduler batches up to 6 ready tasks per submission by default
+    # ("chunksize"), which ran a whole wave on one process while the other idled.
+    from dask import compute
+    from dask.delayed import delayed
+    from jobdata import sleep_then_pid
+
+    from volrecon.pipeline.config import ComputeSettings
+    from volrecon.pipeline.execute import open_local_scheduler
+
+    with open_local_scheduler(ComputeSettings(scheduler="processes", workers=2),
+                              name="test") as kwargs:
+        pids = compute(*[delayed(sleep_then_pid, pure=False)(2.0) for _ in range(2)],
+                       **kwargs)
+    assert len(set(pids)) == 2

@@ -173,6 +173,11 @@ def open_local_scheduler(compute: ComputeSettings, *, name: str) -> Iterator[dic
     kwargs: dict[str, Any] = {"scheduler": compute.scheduler}
     if pool is not None:
         kwargs.update(pool=pool, num_workers=compute.workers)
+    if compute.scheduler == "processes":
+        # dask's process scheduler hands up to 6 ready tasks to one worker in one batch
+        # (config "chunksize"): a wave of 4 tasks then ran on one process, one after the
+        # other, while the other sat idle (the run took 1.8x its per-worker solve time).
+        kwargs["chunksize"] = 1
     try:
         yield kwargs
     finally:

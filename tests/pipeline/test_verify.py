@@ -217,3 +217,22 @@ def test_frames_are_flushed_to_disk_before_their_record(job_files, monkeypatch, 
                     folder = folder.parent
         before, previous = done, mark
     assert before == set(range(N_FRAMES))
+
+
+def test_a_killed_runs_journal_cannot_undo_a_repair(finished):
+    # A resumed run re-solved a chain (frames 3-5), committed them in its task's journal and
+    # was killed before recording them; the rewritten frame 4 is then damaged on disk.
+    from volrecon.pipeline.journal import FrameJournal, journal_paths
+
+    job, store, reference = finished
+    journal = FrameJournal(store, 3, 6)
+    journal.commit([{"t": t, "status": STATUS_DONE, "iterations": 8, "objective": 1.0,
+                     "residual": 0.1, "converged": False, "seconds": 0.1, "failure": None}
+                    for t in (3, 4, 5)])
+    journal.close()
+    _flip_byte(_chunk_file(store, "0", DAMAGED_FRAME))
+    report = verify_store(store)
+    assert sorted(report.damaged) == [DAMAGED_FRAME] and not journal_paths(store)
+    assert JobStore.open(store, mode="r").committed_status()[DAMAGED_FRAME] == STATUS_PENDING
+    run_job(load_job(job))
+    assert_bit_identical(read_store_arrays(store), read_store_arrays(reference))

@@ -117,6 +117,9 @@ def verify_store(path: str | os.PathLike[str], *, frames: str | None = None,
     selected = parse_frame_range(frames, store.n_frames)
     with StoreLock(path):
         started = time.time()
+        # Frames a killed run committed are recorded first, so they are checked too, and a
+        # frame sent back to pending here is never marked done again by its old journal.
+        store.absorb_journals()
         report, damaged_chunks = _check(store, selected, workers=workers, progress=progress)
         if report.damaged:
             store.mark_pending(report.damaged, damaged_chunks=damaged_chunks)

@@ -252,6 +252,9 @@ def solve_admm_window(frames: Array, model: PSFModel, *, iterations: int, tv: fl
     x = xp.zeros_like(alpha)  # read as the previous x by a check at iteration 1
     x_old = xp.empty_like(alpha)
     x_minus_alpha = xp.empty_like(alpha)  # relaxed x minus α; then α = Mv − this
+    # the window's DCT-II of the right-hand sides (without TV wmg itself is kept)
+    window_source: Any = xp.empty_like(v) if temporal and not p.use_tv else None
+    window_sensor: Any = xp.empty_like(alpha) if temporal else None
     rho = RELAXATION
     track = stop_change > 0  # compare w with the previous iterate every iteration
     last_change = math.inf
@@ -297,9 +300,9 @@ def solve_admm_window(frames: Array, model: PSFModel, *, iterations: int, tv: fl
         # frame's spectra at a time keeps the FFTs' working set that of a single frame.
         source = rhs if p.use_tv else wmg
         sensor_rhs = x_minus_alpha
-        if temporal:
-            source = be.fft.dct(source, type=2, axis=0, norm="ortho")
-            sensor_rhs = be.fft.dct(x_minus_alpha, type=2, axis=0, norm="ortho")
+        if temporal:  # with TV the scratch rhs is transformed in place, wmg is kept
+            source = steps.window_dct(source, rhs if p.use_tv else window_source)
+            sensor_rhs = steps.window_dct(x_minus_alpha, window_sensor)
         for k in range(n_frames):
             r_hat = be.rfft2(source[k], shape)
             x_hat = be.rfft2(sensor_rhs[k], shape)
@@ -315,8 +318,8 @@ def solve_admm_window(frames: Array, model: PSFModel, *, iterations: int, tv: fl
                 mv[k] = be.irfft2(mv_hat, shape, overwrite=True)
         del source, r_hat
         if temporal:
-            v = be.fft.idct(v, type=2, axis=0, norm="ortho", overwrite_x=True)
-            mv = be.fft.idct(mv, type=2, axis=0, norm="ortho", overwrite_x=True)
+            steps.window_dct(v, v, inverse=True)
+            steps.window_dct(mv, mv, inverse=True)
         xp.subtract(mv, x_minus_alpha, out=alpha)
         if not check:
             if settled:

@@ -374,3 +374,26 @@ def volume_apply_diagonal(r, h, gain, xh, scale, mu1, mu3, mv, lo, hi):
                 hre, him = hk[2 * j], hk[2 * j + 1]
                 rk[2 * j] = scale * inv * rk[2 * j] + sr[j] * hre + si[j] * him
                 rk[2 * j + 1] = scale * inv * rk[2 * j + 1] + si[j] * hre - sr[j] * him
+
+
+@_jit
+def window_transform(a, out, c, lo, hi):
+    """``out[k] = Σ_m c[k, m]·a[m]`` on rows [lo, hi) of (W, R, X) arrays: a W×W transform
+    along the window (the DCT-II of the temporal prior), one pass over a row of every frame;
+    `out` may be `a`."""
+    nw, _, nx = a.shape
+    buf = np.empty((nw, nx), np.float32)
+    for i in range(lo, hi):
+        for k in range(nw):
+            b = buf[k]
+            ck, src = c[k, 0], a[0, i]
+            for j in range(nx):
+                b[j] = ck * src[j]
+            for m in range(1, nw):
+                ck, src = c[k, m], a[m, i]
+                for j in range(nx):
+                    b[j] += ck * src[j]
+        for k in range(nw):
+            dst, b = out[k, i], buf[k]
+            for j in range(nx):
+                dst[j] = b[j]

@@ -397,3 +397,64 @@ def window_transform(a, out, c, lo, hi):
             dst, b = out[k, i], buf[k]
             for j in range(nx):
                 dst[j] = b[j]
+
+
+
+@_jit
+def window_transform8(a, out, c, lo, hi):
+    """:func:`window_transform` for a window of 8 frames, the matrix held in registers: each
+    element is read once and written once (the general kernel reads and writes a row buffer
+    per product: ~1.8× the time). This row of the 8 frames is copied first, so `out` may be
+    `a` (an aliased row would stop the vectorisation); each sum runs in the order m = 0..7."""
+    _, _, nx = a.shape
+    buf = np.empty((8, nx), np.float32)
+    c00, c01, c02, c03 = c[0, 0], c[0, 1], c[0, 2], c[0, 3]
+    c04, c05, c06, c07 = c[0, 4], c[0, 5], c[0, 6], c[0, 7]
+    c10, c11, c12, c13 = c[1, 0], c[1, 1], c[1, 2], c[1, 3]
+    c14, c15, c16, c17 = c[1, 4], c[1, 5], c[1, 6], c[1, 7]
+    c20, c21, c22, c23 = c[2, 0], c[2, 1], c[2, 2], c[2, 3]
+    c24, c25, c26, c27 = c[2, 4], c[2, 5], c[2, 6], c[2, 7]
+    c30, c31, c32, c33 = c[3, 0], c[3, 1], c[3, 2], c[3, 3]
+    c34, c35, c36, c37 = c[3, 4], c[3, 5], c[3, 6], c[3, 7]
+    c40, c41, c42, c43 = c[4, 0], c[4, 1], c[4, 2], c[4, 3]
+    c44, c45, c46, c47 = c[4, 4], c[4, 5], c[4, 6], c[4, 7]
+    c50, c51, c52, c53 = c[5, 0], c[5, 1], c[5, 2], c[5, 3]
+    c54, c55, c56, c57 = c[5, 4], c[5, 5], c[5, 6], c[5, 7]
+    c60, c61, c62, c63 = c[6, 0], c[6, 1], c[6, 2], c[6, 3]
+    c64, c65, c66, c67 = c[6, 4], c[6, 5], c[6, 6], c[6, 7]
+    c70, c71, c72, c73 = c[7, 0], c[7, 1], c[7, 2], c[7, 3]
+    c74, c75, c76, c77 = c[7, 4], c[7, 5], c[7, 6], c[7, 7]
+    a0, a1, a2, a3, a4, a5, a6, a7 = buf[0], buf[1], buf[2], buf[3], buf[4], buf[5], buf[6], buf[7]
+    for i in range(lo, hi):
+        for m in range(8):
+            bm, am = buf[m], a[m, i]
+            for j in range(nx):
+                bm[j] = am[j]
+        o0, o1, o2, o3 = out[0, i], out[1, i], out[2, i], out[3, i]
+        o4, o5, o6, o7 = out[4, i], out[5, i], out[6, i], out[7, i]
+        for j in range(nx):
+            x0, x1, x2, x3, x4, x5, x6, x7 = a0[j], a1[j], a2[j], a3[j], a4[j], a5[j], a6[j], a7[j]
+            y0 = (c00 * x0 + c01 * x1 + c02 * x2 + c03 * x3 + c04 * x4 + c05 * x5
+                  + c06 * x6 + c07 * x7)
+            y1 = (c10 * x0 + c11 * x1 + c12 * x2 + c13 * x3 + c14 * x4 + c15 * x5
+                  + c16 * x6 + c17 * x7)
+            y2 = (c20 * x0 + c21 * x1 + c22 * x2 + c23 * x3 + c24 * x4 + c25 * x5
+                  + c26 * x6 + c27 * x7)
+            y3 = (c30 * x0 + c31 * x1 + c32 * x2 + c33 * x3 + c34 * x4 + c35 * x5
+                  + c36 * x6 + c37 * x7)
+            y4 = (c40 * x0 + c41 * x1 + c42 * x2 + c43 * x3 + c44 * x4 + c45 * x5
+                  + c46 * x6 + c47 * x7)
+            y5 = (c50 * x0 + c51 * x1 + c52 * x2 + c53 * x3 + c54 * x4 + c55 * x5
+                  + c56 * x6 + c57 * x7)
+            y6 = (c60 * x0 + c61 * x1 + c62 * x2 + c63 * x3 + c64 * x4 + c65 * x5
+                  + c66 * x6 + c67 * x7)
+            y7 = (c70 * x0 + c71 * x1 + c72 * x2 + c73 * x3 + c74 * x4 + c75 * x5
+                  + c76 * x6 + c77 * x7)
+            o0[j] = y0
+            o1[j] = y1
+            o2[j] = y2
+            o3[j] = y3
+            o4[j] = y4
+            o5[j] = y5
+            o6[j] = y6
+            o7[j] = y7

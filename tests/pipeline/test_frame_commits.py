@@ -1,9 +1,11 @@
 """Frames are committed one by one inside a task: progress moves from the first frame, and a
-kill or Ctrl-C in the middle of a task keeps every frame committed so far (a whole shard in a
-sharded store), while the resumed store stays bit-identical to an uninterrupted run."""
+kill or Ctrl-C in the middle of a task keeps every frame committed so far (in a sharded store:
+the shards written, on a stop and every flush interval with the frames so far), while the
+resumed store stays bit-identical to an uninterrupted run."""
 
 from __future__ import annotations
 
+import os
 import signal
 import subprocess
 import sys
@@ -55,16 +57,24 @@ def _committed(store: Path) -> int:
     return sum(len(read_journal(p)) for p in journal_paths(store))
 
 
-def _start_and_wait(job: Path, at_least: int) -> subprocess.Popen[str]:
+def _start_and_wait(job: Path, at_least: int, *, flush_interval: str = "10s",
+                    seconds: float = 0.0) -> subprocess.Popen[str]:
+    """Start `volrecon run` and wait until `at_least` frames are committed (or, with
+    `seconds`, until the store has existed that long)."""
+    env = {**os.environ, "DASK_VOLRECON__SHARD_FLUSH_INTERVAL": flush_interval}
     child = subprocess.Popen([sys.executable, "-m", "volrecon.cli", "run", str(job),
                               "--no-progress"], stdout=subprocess.PIPE,
-                             stderr=subprocess.PIPE, text=True)
+                             stderr=subprocess.PIPE, text=True, env=env)
     store = job.parent / "out.zarr"
     deadline = time.monotonic() + DEADLINE_S
+    created = None
     while time.monotonic() < deadline:
         if child.poll() is not None:
             pytest.fail(f"run ended early: {child.communicate()}")
-        if _committed(store) >= at_least:
+        if created is None and (store / "diagnostics" / "status" / "commits").is_dir():
+            created = time.monotonic()
+        if _committed(store) >= at_least and (
+                created is not None and time.monotonic() - created >= seconds):
             return child
         time.sleep(0.01)
     child.kill()
@@ -97,18 +107,24 @@ def test_progress_moves_inside_a_single_task(tmp_path, rng, monkeypatch):
     assert events[-1].done == N_FRAMES and not journal_paths(tmp_path / "out.zarr")
 
 
-@pytest.mark.parametrize("shard_frames", [1, 4])
-def test_sigkill_inside_a_task_keeps_committed_frames(tmp_path, rng, capsys, shard_frames):
+@pytest.mark.parametrize(("shard_frames", "flush_interval"),
+                         [(1, "10s"), (4, "1h"), (N_FRAMES, "0.3s")])
+def test_sigkill_inside_a_task_keeps_committed_frames(tmp_path, rng, capsys, shard_frames,
+                                                      flush_interval):
+    # One file per frame; shards of 4 committed as each is written; one shard of all the
+    # frames, rewritten with the frames so far whenever nothing reached the disk for 0.3 s.
     job = _write_job(tmp_path, rng, shard_frames=shard_frames)
     store = tmp_path / "out.zarr"
     run_job(load_job(tmp_path / "reference.toml"))
     reference = read_store_arrays(tmp_path / "reference.zarr")
 
-    child = _start_and_wait(job, at_least=5)
+    child = _start_and_wait(job, at_least=5, flush_interval=flush_interval)
     child.kill()
     child.communicate(timeout=DEADLINE_S)
     committed = _committed(store)
-    assert committed >= 5 and committed % shard_frames == 0  # whole shards only
+    assert committed >= 5
+    if flush_interval == "1h":
+        assert committed % shard_frames == 0  # whole shards only
 
     # What the kill kept is visible before any resume, and equals the reference bit for bit.
     assert store_status(store).done == committed
@@ -130,17 +146,22 @@ def test_sigkill_inside_a_task_keeps_committed_frames(tmp_path, rng, capsys, sha
     assert_bit_identical(read_store_arrays(store), reference)
 
 
-def test_ctrl_c_inside_a_task_keeps_committed_frames_and_stops_soon(tmp_path, rng):
-    job = _write_job(tmp_path, rng, iterations=400)
+@pytest.mark.parametrize("shard_frames", [1, N_FRAMES])
+def test_ctrl_c_inside_a_task_keeps_committed_frames_and_stops_soon(tmp_path, rng,
+                                                                    shard_frames):
+    # With one shard of all the frames and no timed flush, only the flush on the stop can
+    # keep the finished frames.
+    job = _write_job(tmp_path, rng, iterations=400, shard_frames=shard_frames)
     store = tmp_path / "out.zarr"
-    child = _start_and_wait(job, at_least=3)
+    child = _start_and_wait(job, at_least=3 if shard_frames == 1 else 0,
+                            flush_interval="1h", seconds=0.0 if shard_frames == 1 else 4.0)
     child.send_signal(signal.SIGINT)
     _, err = child.communicate(timeout=DEADLINE_S)
     if child.returncode == 0:
         pytest.skip("the run finished before the signal landed")
     assert child.returncode == 130, err
     status = store_status(store)
-    assert 3 <= status.done < N_FRAMES  # kept, and the task stopped after its frame
+    assert (3 if shard_frames == 1 else 1) <= status.done < N_FRAMES  # kept; stopped early
     assert status.runs[-1]["outcome"] == "interrupted"
     assert status.runs[-1]["frames_done_after"] == status.done
     assert not journal_paths(store)  # recorded before the run ended

@@ -24,6 +24,7 @@ __all__ = [
     "ComputeSettings",
     "JobConfig",
     "SolverSettings",
+    "dask_config_seconds",
     "job_from_dict",
     "job_schema",
     "load_job",
@@ -345,3 +346,26 @@ def _validate(document: Any, source: str) -> None:
         )
     message = error.message.replace("\n", " ")
     raise ConfigError(f"{source}: key '{where or '(top level)'}': {message}; fix the job file")
+
+
+def dask_config_seconds(key: str, default: str) -> float:
+    """A duration from dask's config (``volrecon.<name>``: a job's environment sets it as
+    ``DASK_VOLRECON__<NAME>=5m``, also on every worker), in seconds.
+
+    Raises
+    ------
+    ConfigError
+        If the value is not a duration of at least 0.
+    """
+    import dask.config
+    from dask.utils import parse_timedelta
+
+    value = dask.config.get(key, default)
+    try:
+        seconds = parse_timedelta(value, default="s")
+    except (TypeError, ValueError, KeyError):
+        seconds = None
+    if seconds is None or seconds < 0:
+        raise ConfigError(f"dask config '{key}' is {value!r}; give a duration such as "
+                          "\"60s\"")
+    return float(seconds)

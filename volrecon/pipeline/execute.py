@@ -29,6 +29,7 @@ from typing import TYPE_CHECKING, Any
 
 from volrecon.backend import split_threads
 from volrecon.errors import ConfigError, WorkersLostError
+from volrecon.pipeline.config import dask_config_seconds
 from volrecon.pipeline.store import FrameRecords
 from volrecon.pipeline.task import STOP, run_task
 
@@ -217,18 +218,7 @@ class LostWorker:
 def no_workers_timeout_s() -> float:
     """Seconds a distributed run waits with no worker left after losing some (see
     :data:`NO_WORKERS_TIMEOUT`; dask config key ``volrecon.no-workers-timeout``)."""
-    import dask.config
-    from dask.utils import parse_timedelta
-
-    value = dask.config.get("volrecon.no-workers-timeout", NO_WORKERS_TIMEOUT)
-    try:
-        seconds = parse_timedelta(value, default="s")
-    except (TypeError, ValueError, KeyError):
-        seconds = None
-    if seconds is None or seconds < 0:
-        raise ConfigError(f"dask config 'volrecon.no-workers-timeout' is {value!r}; give a "
-                          "duration such as \"60s\"")
-    return float(seconds)
+    return dask_config_seconds("volrecon.no-workers-timeout", NO_WORKERS_TIMEOUT)
 
 
 class _WorkerWatch:

@@ -165,19 +165,31 @@ class ShardBuffer:
         parts.append(contents["c/" + "/".join("0" * index.ndim)].to_bytes())
         return b"".join(parts)
 
-    def write(self) -> Path:
+    @property
+    def added(self) -> list[int]:
+        """Frames added so far, in order."""
+        return sorted(self._added)
+
+    def write(self, *, partial: bool = False) -> Path:
         """Write the shard file through the array's zarr store, whole and atomically (zarr's
         LocalStore writes a temporary ``*.partial`` file, then renames it over the shard).
+
+        Parameters
+        ----------
+        partial : bool
+            Write the frames added so far (the others read as the fill value, NaN) so that
+            a kill keeps them; the complete shard is written again later, whole.
 
         Raises
         ------
         ValueError
-            If a frame of the shard was never added (the shard would lose it).
+            If a frame of the shard was never added and `partial` is false (the shard would
+            lose it).
         """
         from zarr.core.buffer import default_buffer_prototype
         from zarr.core.sync import sync
 
-        if not self.complete:
+        if not (self.complete or partial):
             missing = sorted(set(range(self.start, self.stop)) - self._added)
             raise ValueError(f"{self.path}: frames {missing} of the shard were never written")
         buffer = default_buffer_prototype().buffer.from_bytes(self.encode())
@@ -193,9 +205,10 @@ def shard_count(n_frames: int, shard_frames: int) -> int:
 class FrameWriter:
     """Writes a task's frames of one frame array: chunk by chunk, or whole shard files.
 
-    A sharded array's frames are encoded as they come and each shard file is written once,
-    atomically, when its last frame is in (:class:`ShardBuffer`);
-    the task must cover whole shards (:func:`~volrecon.pipeline.plan.plan_tasks`).
+    A sharded array's frames are encoded as they come and each shard file is written,
+    atomically, when its last frame is in (:class:`ShardBuffer`), and on :meth:`flush`
+    with the frames it has so far; the task must cover whole shards
+    (:func:`~volrecon.pipeline.plan.plan_tasks`).
     """
 
     def __init__(self, store_path: str, array: Any) -> None:
@@ -203,6 +216,7 @@ class FrameWriter:
         self._array = array
         self._shard_frames = shard_frames_of(array)
         self._buffer: ShardBuffer | None = None
+        self._flushed: set[int] = set()  # frames of the open shard already on disk
 
     def write(self, t: int, frame: np.ndarray) -> list[int]:
         """Write frame `t` (or keep it encoded until its shard is complete); return the
@@ -216,9 +230,21 @@ class FrameWriter:
         if not self._buffer.complete:
             return []
         self._buffer.write()
-        written = list(range(self._buffer.start, self._buffer.stop))
-        self._buffer = None
+        written = [f for f in range(self._buffer.start, self._buffer.stop)
+                   if f not in self._flushed]
+        self._buffer, self._flushed = None, set()
         return written
+
+    def flush(self) -> list[int]:
+        """Write the open shard with the frames it has so far (:meth:`ShardBuffer.write`
+        with ``partial``); return the frames that this put on disk for the first time."""
+        if self._buffer is None:
+            return []
+        new = [f for f in self._buffer.added if f not in self._flushed]
+        if new:
+            self._buffer.write(partial=True)
+            self._flushed.update(new)
+        return new
 
     def files(self, t: int) -> list[Path]:
         """The files holding frame `t` of this array (:func:`frame_files`)."""

@@ -11,6 +11,7 @@ from __future__ import annotations
 import collections
 import logging
 import threading
+import time
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
 from functools import lru_cache
@@ -20,6 +21,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from volrecon.io.ome_zarr import IMAGE_PATH, downsample_yx
+from volrecon.pipeline.config import dask_config_seconds
 from volrecon.pipeline.journal import FrameJournal
 from volrecon.pipeline.shards import FrameWriter
 from volrecon.pipeline.store import (
@@ -46,6 +48,13 @@ logger = logging.getLogger(__name__)
 #: Finished volumes queued for a task's writer thread at most; a solver this far ahead
 #: waits, so memory stays flat.
 WRITE_QUEUE_FRAMES = 4
+
+#: A sharded store's open shard files are rewritten with the frames finished so far when
+#: nothing has reached the disk for this long (dask config ``volrecon.shard-flush-interval``,
+#: e.g. ``DASK_VOLRECON__SHARD_FLUSH_INTERVAL=30s``), so a kill loses at most about this much
+#: work per worker; the complete shard is written again, whole, at its end. Each rewrite costs
+#: the shard's bytes so far (16 MB at most for 32 frames of 16×128² float32).
+SHARD_FLUSH_INTERVAL = "10s"
 
 #: Set by the driver on Ctrl-C: tasks running in its own process (threads, synchronous) stop
 #: after the frame they are solving, keeping every frame committed so far.
@@ -146,9 +155,11 @@ def run_task(context: TaskContext, spec: TaskSpec) -> FrameRecords:
     always follows their data.
 
     Each frame is committed as soon as its files are on disk (fsynced; in a sharded store,
-    once its shard file is written): one line in the task's journal
-    (:mod:`volrecon.pipeline.journal`), which the driver folds into the diagnostics, so a kill
-    or Ctrl-C loses only the frames in flight.
+    once its shard file is written: at the shard's end, on a stop, and with the frames so far
+    when nothing reached the disk for :data:`SHARD_FLUSH_INTERVAL`): one line in the task's
+    journal (:mod:`volrecon.pipeline.journal`), which the driver folds into the diagnostics,
+    so Ctrl-C loses only the frames being solved, and a kill at most those and the last
+    flush interval's frames of a sharded store.
 
     Raises
     ------
@@ -189,6 +200,24 @@ def run_task(context: TaskContext, spec: TaskSpec) -> FrameRecords:
     waiting: dict[int, dict[str, Any]] = {}  # written to some arrays, not yet committed
     written: collections.Counter[int] = collections.Counter()
 
+    flush_interval = dask_config_seconds("volrecon.shard-flush-interval",
+                                         SHARD_FLUSH_INTERVAL)
+    last_on_disk = [time.monotonic()]
+
+    def commit(done: list[int]) -> None:
+        """Commit every frame that `done` made wholly on disk (all arrays written)."""
+        written.update(done)
+        ready = sorted(f for f in set(done) if written[f] == len(writers))
+        if ready:
+            fsync_tree(dict.fromkeys(path for f in ready for w in writers.values()
+                                     for path in w.files(f)), Path(context.store_path))
+            journal.commit([waiting.pop(f) for f in ready])
+            last_on_disk[0] = time.monotonic()
+
+    def flush() -> None:
+        """Write open shards with the frames they have so far, and commit those."""
+        commit([f for w in writers.values() for f in w.flush()])
+
     def write(t: int, volume: np.ndarray, entry: dict[str, Any]) -> None:
         """Write frame `t` everywhere, then commit every frame now wholly on disk."""
         waiting[t] = entry
@@ -200,12 +229,9 @@ def run_task(context: TaskContext, spec: TaskSpec) -> FrameRecords:
         if context.projections:
             for name, projected in max_projections(volume).items():
                 done += writers[name].write(t, projected)
-        written.update(done)
-        ready = sorted(f for f in set(done) if written[f] == len(writers))
-        if ready:
-            fsync_tree(dict.fromkeys(path for f in ready for w in writers.values()
-                                     for path in w.files(f)), Path(context.store_path))
-            journal.commit([waiting.pop(f) for f in ready])
+        commit(done)
+        if time.monotonic() - last_on_disk[0] >= flush_interval:
+            flush()
 
     # One thread reads (and corrects) the next chain's frames while this one solves, another
     # encodes and writes the finished frames in order; at most WRITE_QUEUE_FRAMES volumes wait
@@ -260,6 +286,7 @@ def run_task(context: TaskContext, spec: TaskSpec) -> FrameRecords:
                 if STOP.is_set():
                     break
             if STOP.is_set():
+                writes.append(writer.submit(flush))  # keep the open shards' frames
                 break
         while writes:
             writes.popleft().result()

@@ -55,6 +55,9 @@ WRITE_QUEUE_FRAMES = 4
 #: work per worker; the complete shard is written again, whole, at its end. Each rewrite costs
 #: the shard's bytes so far (16 MB at most for 32 frames of 16×128² float32).
 SHARD_FLUSH_INTERVAL = "10s"
+#: ... and at most once per this many times the last such rewrite took (large volumes: a
+#: shard of 32 frames of 32×512² is ~0.3 GB, so the rewrites stay under 5 % of the time).
+FLUSH_SHARE = 20.0
 
 #: Set by the driver on Ctrl-C: tasks running in its own process (threads, synchronous) stop
 #: after the frame they are solving, keeping every frame committed so far.
@@ -214,9 +217,13 @@ def run_task(context: TaskContext, spec: TaskSpec) -> FrameRecords:
             journal.commit([waiting.pop(f) for f in ready])
             last_on_disk[0] = time.monotonic()
 
+    flush_seconds = [0.0]
+
     def flush() -> None:
         """Write open shards with the frames they have so far, and commit those."""
+        t0 = time.monotonic()
         commit([f for w in writers.values() for f in w.flush()])
+        flush_seconds[0] = time.monotonic() - t0
 
     def write(t: int, volume: np.ndarray, entry: dict[str, Any]) -> None:
         """Write frame `t` everywhere, then commit every frame now wholly on disk."""
@@ -230,7 +237,9 @@ def run_task(context: TaskContext, spec: TaskSpec) -> FrameRecords:
             for name, projected in max_projections(volume).items():
                 done += writers[name].write(t, projected)
         commit(done)
-        if time.monotonic() - last_on_disk[0] >= flush_interval:
+        # At most every flush interval, and never more than 1/FLUSH_SHARE of the time.
+        if time.monotonic() - last_on_disk[0] >= max(flush_interval,
+                                                     FLUSH_SHARE * flush_seconds[0]):
             flush()
 
     # One thread reads (and corrects) the next chain's frames while this one solves, another

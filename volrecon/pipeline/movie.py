@@ -270,7 +270,7 @@ def export_movie(store_path: str | os.PathLike[str], movie_path: str | os.PathLi
     if not out.parent.is_dir():
         raise OutputWriteError(f"--movie {out}: {out.parent} is not an existing folder; "
                                "create it or choose another path")
-    status = store.status()[selected]
+    status = store.committed_status()[selected]  # with frames a running task committed
     done = [selected.start + int(i) for i in np.flatnonzero(status == STATUS_DONE)]
     skipped = len(status) - len(done)
     if not done:

@@ -257,6 +257,16 @@ class PSFModel(ABC):
         self._norm_cache["value"] = value
         return value
 
+    def sensitivity(self) -> Any:
+        """``Aᵀ1``, the adjoint of an all-ones frame (Richardson–Lucy's normaliser), on the
+        model's backend; computed once per model object and cached (do not modify it)."""
+        cached = self.__dict__.get("_sensitivity")
+        if cached is None:
+            xp = self.backend.xp
+            cached = self.adjoint(xp.ones(self.shape_out, dtype=self.dtype))
+            self.__dict__["_sensitivity"] = cached
+        return cached
+
     def _seed_norm(self, value: float | None) -> None:
         if value is not None:
             self._norm_cache["value"] = float(value)

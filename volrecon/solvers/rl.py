@@ -43,9 +43,9 @@ def solve_rl(frame: Array, model: PSFModel, *, iterations: int, tv: float, l1: f
     xp = model.backend.xp
     steps = steps_for(model.backend, model.dtype, compiled=compiled)
     b = xp.maximum(frame, 0)
-    sensitivity = model.adjoint(xp.ones(model.shape_out, dtype=model.dtype))
+    sensitivity = model.sensitivity()  # cached: one adjoint per model, not per frame
     floor = float(sensitivity.max()) * 1e-6
-    xp.maximum(sensitivity, floor, out=sensitivity)
+    sensitivity = xp.maximum(sensitivity, floor)
     if isinstance(init, SolverState):
         v = init.arrays["v"].copy()
     elif init is not None:

@@ -30,13 +30,15 @@ N_FRAMES = 24
 DEADLINE_S = 600
 
 
-def _write_job(folder: Path, rng: np.random.Generator, *, shard_frames: int = 1,
+def _write_job(folder: Path, *, shard_frames: int = 1,
                iterations: int = 150) -> Path:
     """One task of all frames (chains of 4), so only per-frame commits can show progress."""
     model = volrecon.PSFModel.from_stack(gaussian_psf((4, 40, 40)), depth_step_um=1.5,
                                          pixel_size_um=0.5)
     model.save(folder / "model")
-    tifffile.imwrite(folder / "raw.tif", bead_video(model, N_FRAMES, rng))
+    # A fixed seed: every job of this module holds the same video (one reference serves all).
+    tifffile.imwrite(folder / "raw.tif",
+                     bead_video(model, N_FRAMES, np.random.default_rng(20261204)))
     tifffile.imwrite(folder / "dark.tif", np.full((40, 40), 100, np.uint16))
     document = {
         "model": {"path": "model"},
@@ -81,6 +83,15 @@ def _start_and_wait(job: Path, at_least: int, *, flush_interval: str = "10s",
     pytest.fail("no frame was committed")
 
 
+@pytest.fixture(scope="module")
+def reference(tmp_path_factory) -> dict[str, np.ndarray]:
+    """The uninterrupted run's arrays (the same values in every layout: test_shards.py)."""
+    folder = tmp_path_factory.mktemp("commits-reference")
+    _write_job(folder)
+    run_job(load_job(folder / "reference.toml"))
+    return read_store_arrays(folder / "reference.zarr")
+
+
 def test_journal_drops_a_torn_line(tmp_path):
     journal = FrameJournal(tmp_path, 0, 4)
     entry = {"t": 0, "status": 1, "iterations": 5, "objective": float("nan"),
@@ -94,9 +105,9 @@ def test_journal_drops_a_torn_line(tmp_path):
     assert np.isnan(frames[0]["objective"]) and frames[1]["converged"] is True
 
 
-def test_progress_moves_inside_a_single_task(tmp_path, rng, monkeypatch):
+def test_progress_moves_inside_a_single_task(tmp_path, monkeypatch):
     monkeypatch.setattr(job_module, "PROGRESS_POLL_S", 0.01)
-    job = _write_job(tmp_path, rng, iterations=60)
+    job = _write_job(tmp_path, iterations=60)
     events = []
     result = run_job(load_job(job), progress=events.append)
     assert result.done == N_FRAMES
@@ -109,14 +120,12 @@ def test_progress_moves_inside_a_single_task(tmp_path, rng, monkeypatch):
 
 @pytest.mark.parametrize(("shard_frames", "flush_interval"),
                          [(1, "10s"), (4, "1h"), (N_FRAMES, "0.3s")])
-def test_sigkill_inside_a_task_keeps_committed_frames(tmp_path, rng, capsys, shard_frames,
-                                                      flush_interval):
+def test_sigkill_inside_a_task_keeps_committed_frames(tmp_path, reference, capsys,
+                                                      shard_frames, flush_interval):
     # One file per frame; shards of 4 committed as each is written; one shard of all the
     # frames, rewritten with the frames so far whenever nothing reached the disk for 0.3 s.
-    job = _write_job(tmp_path, rng, shard_frames=shard_frames)
+    job = _write_job(tmp_path, shard_frames=shard_frames)
     store = tmp_path / "out.zarr"
-    run_job(load_job(tmp_path / "reference.toml"))
-    reference = read_store_arrays(tmp_path / "reference.zarr")
 
     child = _start_and_wait(job, at_least=5, flush_interval=flush_interval)
     child.kill()
@@ -147,11 +156,10 @@ def test_sigkill_inside_a_task_keeps_committed_frames(tmp_path, rng, capsys, sha
 
 
 @pytest.mark.parametrize("shard_frames", [1, N_FRAMES])
-def test_ctrl_c_inside_a_task_keeps_committed_frames_and_stops_soon(tmp_path, rng,
-                                                                    shard_frames):
+def test_ctrl_c_inside_a_task_keeps_committed_frames_and_stops_soon(tmp_path, shard_frames):
     # With one shard of all the frames and no timed flush, only the flush on the stop can
     # keep the finished frames.
-    job = _write_job(tmp_path, rng, iterations=400, shard_frames=shard_frames)
+    job = _write_job(tmp_path, iterations=400, shard_frames=shard_frames)
     store = tmp_path / "out.zarr"
     child = _start_and_wait(job, at_least=3 if shard_frames == 1 else 0,
                             flush_interval="1h", seconds=0.0 if shard_frames == 1 else 4.0)

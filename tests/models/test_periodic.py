@@ -55,15 +55,22 @@ def test_forward_matches_scipy_per_sub_position(rng, shape, dtype, rtol):
     assert np.linalg.norm(got - expected) / np.linalg.norm(expected) < rtol
 
 
-@pytest.mark.parametrize("reach_yx", [((-2, 1), (0, 3)), ((0, 0), (-1, 0)), ((-4, 4), (-4, 4))])
-def test_compact_responses_use_a_smaller_lattice_grid_and_stay_exact(rng, reach_yx):
-    nz, n, ny, nx = 2, 3, 31, 26
+def _compact_responses(rng, shape_znyx, reach_yx):
+    """Random responses lit only from lenslet ya to yb (xa to xb) around the central block."""
+    nz, n, ny, nx = shape_znyx
     y0, x0 = n * ((ny // 2) // n), n * ((nx // 2) // n)
     (ya, yb), (xa, xb) = reach_yx
     psf = np.zeros((nz, n, n, ny, nx))
-    # Responses lit only from lenslet ya to yb (xa to xb) around the central block.
     window = (slice(y0 + n * ya, y0 + n * (yb + 1)), slice(x0 + n * xa, x0 + n * (xb + 1)))
     psf[..., window[0], window[1]] = rng.random(psf[..., window[0], window[1]].shape)
+    return psf
+
+
+@pytest.mark.parametrize("reach_yx", [((-2, 1), (0, 3)), ((0, 0), (-1, 0)), ((-4, 4), (-4, 4))])
+def test_compact_responses_use_a_smaller_lattice_grid_and_stay_exact(rng, reach_yx):
+    nz, n, ny, nx = 2, 3, 31, 26
+    psf = _compact_responses(rng, (nz, n, ny, nx), reach_yx)
+    (ya, yb), (xa, xb) = reach_yx
     volume = rng.random((nz, ny, nx))
     model = LensletPSF(psf, GEOMETRY, dtype=np.float64)
     qy, qx = model.lattice_shape
@@ -87,11 +94,7 @@ def test_compact_responses_use_a_smaller_lattice_grid_and_stay_exact(rng, reach_
 ])
 def test_overlap_save_tiles_match_scipy(rng, reach_yx, tiles_yx):
     nz, n, ny, nx = 2, 3, 47, 50
-    y0, x0 = n * ((ny // 2) // n), n * ((nx // 2) // n)
-    (ya, yb), (xa, xb) = reach_yx
-    psf = np.zeros((nz, n, n, ny, nx))
-    window = (slice(y0 + n * ya, y0 + n * (yb + 1)), slice(x0 + n * xa, x0 + n * (xb + 1)))
-    psf[..., window[0], window[1]] = rng.random(psf[..., window[0], window[1]].shape)
+    psf = _compact_responses(rng, (nz, n, ny, nx), reach_yx)
     volume = rng.random((nz, ny, nx))
     model = LensletPSF(psf, GEOMETRY, dtype=np.float64, tiles_yx=tiles_yx)
     assert model.tiles_yx == tiles_yx

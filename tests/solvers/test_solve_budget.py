@@ -98,3 +98,40 @@ def test_rl_sensitivity_is_computed_once_per_model(counted):
     one_adjoint = backend.planes["n"]
     assert one_adjoint > 0 and spent[0] - spent[1] == one_adjoint
     np.testing.assert_array_equal(model.sensitivity(), reference)
+
+
+def test_admm_model_constants_are_computed_once_per_model(counted, monkeypatch):
+    """A warm ADMM + TV solve reuses the model's spectra, Σ|Ĥ|² and the volume-solve factors
+    of its starting penalties from the solve before, and gives the same bits as a model
+    that has nothing kept."""
+    from volrecon.solvers import admm_kernels
+
+    model, _, frame = counted
+    fresh = model.with_backend(model.backend)  # the same operator, nothing kept
+    settings = SolverSettings(method="admm", iterations=2, tv=1e-3, tol=0.0)
+    start = solve_frame(frame, model, SolverSettings(method="admm", iterations=20, tv=1e-3,
+                                                     tol=0.0))
+    calls = {"factors": 0, "spectra": 0}
+    factors, spectra = admm_kernels.volume_factors, model.transfer_functions
+
+    def counted_factors(*args: Any) -> None:
+        calls["factors"] += 1
+        factors(*args)
+
+    def counted_spectra() -> Any:
+        calls["spectra"] += 1
+        return spectra()
+
+    monkeypatch.setattr(admm_kernels, "volume_factors", counted_factors)
+    monkeypatch.setattr(model, "transfer_functions", counted_spectra)
+    first = solve_frame(frame, model, settings, init=start.info.state)
+    # The 20-iteration solve left the spectra and the factors of the penalties it ended
+    # with, which a warm start begins from (2 iterations end before any rebalancing).
+    assert calls == {"factors": 0, "spectra": 0}
+    assert first.info.iterations == 2
+    second = solve_frame(frame, model, settings, init=start.info.state)
+    assert calls == {"factors": 0, "spectra": 0}
+    np.testing.assert_array_equal(first.volume, second.volume)
+    monkeypatch.undo()
+    reference = solve_frame(frame, fresh, settings, init=start.info.state)
+    np.testing.assert_array_equal(first.volume, reference.volume)

@@ -143,7 +143,7 @@ def run(args: argparse.Namespace) -> int:
         z, y, x = r["size_zyx"]
         costs = ", ".join(f"k={k}: {c:.1f}" for k, c in
                           zip(r["iterations"], r["solve_in_bounds"], strict=True))
-        print(f"{f'{z}x{y}x{x}':>16} {r['method']:>6}  {costs};  fixed cost "
+        print(f"{f'{z}x{y}x{x}':>16} {r['method']:>6} tv {r['tv']:<5g}  {costs};  fixed cost "
               f"{r['overhead_in_bounds']:.2f} (target <= {r['overhead_target']:g}), per "
               f"iteration {r['per_iteration_in_bounds']:.2f}")
     for r in report.get("general", []):

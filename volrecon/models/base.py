@@ -11,7 +11,9 @@ shapes and dtypes and handles any number of leading frame axes.
 from __future__ import annotations
 
 import math
+import threading
 from abc import ABC, abstractmethod
+from collections.abc import Callable, Hashable
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, ClassVar
 
@@ -24,6 +26,10 @@ if TYPE_CHECKING:
     from volrecon._typing import Array
 
 __all__ = ["Geometry", "PSFModel"]
+
+
+#: Guards every model's solver cache (held only to look up and store, never to compute).
+_SOLVER_CACHE_LOCK = threading.Lock()
 
 
 @dataclass(frozen=True)
@@ -86,6 +92,7 @@ class PSFModel(ABC):
         self.backend = backend
         # Filled at most once by operator_norm_squared(); every worker may compute the same value.
         self._norm_cache: dict[str, float] = {}
+        self._solver_cache: dict[Hashable, Any] = {}
 
     # ----------------------------------------------------------------- construction & storage
     @classmethod
@@ -260,12 +267,23 @@ class PSFModel(ABC):
     def sensitivity(self) -> Any:
         """``Aᵀ1``, the adjoint of an all-ones frame (Richardson–Lucy's normaliser), on the
         model's backend; computed once per model object and cached (do not modify it)."""
-        cached = self.__dict__.get("_sensitivity")
-        if cached is None:
-            xp = self.backend.xp
-            cached = self.adjoint(xp.ones(self.shape_out, dtype=self.dtype))
-            self.__dict__["_sensitivity"] = cached
-        return cached
+        return self.solver_cache("sensitivity", lambda: self.adjoint(
+            self.backend.xp.ones(self.shape_out, dtype=self.dtype)))
+
+    def solver_cache(self, key: Hashable, make: Callable[[], Any]) -> Any:
+        """``make()``, computed on the first call for `key` and kept for the model's life.
+
+        For what the solvers derive from the model alone and would otherwise recompute for
+        every frame (RL's sensitivity, ADMM's spectra and factors). Not saved and not pickled:
+        a worker builds its own. Safe from several threads; two racing first calls may both
+        compute, and the first result is kept (the values are the same). Do not modify it.
+        """
+        with _SOLVER_CACHE_LOCK:
+            if key in self._solver_cache:
+                return self._solver_cache[key]
+        value = make()
+        with _SOLVER_CACHE_LOCK:
+            return self._solver_cache.setdefault(key, value)
 
     def _seed_norm(self, value: float | None) -> None:
         if value is not None:

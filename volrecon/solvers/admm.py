@@ -79,7 +79,11 @@ INITIAL_MU3 = 1.0
 
 
 class _Problem:
-    """Constants of one solve: spectra, the lateral Laplacian, the frames, on one backend."""
+    """Constants of one solve: spectra, the lateral Laplacian, the frames, on one backend.
+
+    What depends on the model alone (Ĥ, Σ_z|Ĥ_z|², the Laplacian) is the model's, computed by
+    its first ADMM solve and kept (:meth:`PSFModel.solver_cache`): a low-rank model builds its
+    Z spectra once, not once per frame."""
 
     def __init__(self, model: PSFModel, frames: Array, tv: float) -> None:
         be: Backend = model.backend
@@ -91,27 +95,11 @@ class _Problem:
         self.ny, self.nx = model.shape_out
         self.dtype = model.dtype
         self.use_tv = tv > 0
-        spectra = model.transfer_functions()
-        if spectra is None:
-            raise ValueError("ADMM needs a model with transfer functions")
-        self.h = spectra  # Ĥ, used as given (a = conj(Ĥ) is formed inside the steps)
-        # Σ_z |Ĥ_z(f)|² weighted for the half spectrum: ‖Mᵀx‖² = Σ_f wgt·S(f)|X̂|² / (Py Px)
-        py, px = self.shape
-        fx = px // 2 + 1
-        half = np.full(fx, 2.0)
-        half[0] = 1.0
-        if px % 2 == 0:
-            half[-1] = 1.0
-        self.half_weight = xp.asarray((half / (py * px)).astype(self.dtype))
-        self.sum_abs2 = xp.zeros(spectra.shape[1:], dtype=self.dtype)
-        for plane in spectra:  # one plane at a time: no Z-sized temporaries
-            self.sum_abs2 += plane.real**2 + plane.imag**2
-        self.lateral: Any = None
-        if self.use_tv:
-            ky = np.fft.fftfreq(py)[:, None]
-            kx = np.fft.rfftfreq(px)[None, :]
-            lateral = (2 - 2 * np.cos(2 * np.pi * ky)) + (2 - 2 * np.cos(2 * np.pi * kx))
-            self.lateral = xp.asarray(lateral.astype(self.dtype))
+        # Ĥ is used as given (a = conj(Ĥ) is formed inside the steps)
+        self.h, self.half_weight, self.sum_abs2 = model.solver_cache(
+            "admm-spectra", lambda: _spectra_constants(model))
+        self.lateral: Any = model.solver_cache(
+            "admm-lateral", lambda: _lateral_laplacian(model)) if self.use_tv else None
         self.sensor = (slice(None), slice(0, self.ny), slice(0, self.nx))
         self.b_padded = xp.zeros((self.n_frames, *self.shape), dtype=self.dtype)
         self.b_padded[self.sensor] = frames
@@ -120,6 +108,34 @@ class _Problem:
         """‖Mᵀx‖ from the half spectrum of x (one or several frames), by Parseval."""
         energy = (self.half_weight * self.sum_abs2 * (x_hat.real**2 + x_hat.imag**2)).sum()
         return math.sqrt(max(float(energy), 0.0))
+
+
+def _spectra_constants(model: PSFModel) -> tuple[Array, Array, Array]:
+    """Ĥ, the half-spectrum weights and ``Σ_z |Ĥ_z(f)|²`` of a model, on its backend."""
+    xp = model.backend.xp
+    spectra = model.transfer_functions()
+    if spectra is None:
+        raise ValueError("ADMM needs a model with transfer functions")
+    # ‖Mᵀx‖² = Σ_f wgt·S(f)|X̂|² / (Py Px) over the half spectrum
+    py, px = model.padded_shape
+    half = np.full(px // 2 + 1, 2.0)
+    half[0] = 1.0
+    if px % 2 == 0:
+        half[-1] = 1.0
+    half_weight = xp.asarray((half / (py * px)).astype(model.dtype))
+    sum_abs2 = xp.zeros(spectra.shape[1:], dtype=model.dtype)
+    for plane in spectra:  # one plane at a time: no Z-sized temporaries
+        sum_abs2 += plane.real**2 + plane.imag**2
+    return spectra, half_weight, sum_abs2
+
+
+def _lateral_laplacian(model: PSFModel) -> Array:
+    """``L(f) = |1−e^{−2πi f_y}|² + |1−e^{−2πi f_x}|²`` on the padded half spectrum."""
+    py, px = model.padded_shape
+    ky = np.fft.fftfreq(py)[:, None]
+    kx = np.fft.rfftfreq(px)[None, :]
+    lateral = (2 - 2 * np.cos(2 * np.pi * ky)) + (2 - 2 * np.cos(2 * np.pi * kx))
+    return model.backend.xp.asarray(lateral.astype(model.dtype))
 
 
 def _forward_padded(p: _Problem, v: Array, planes: int = 8) -> Array:
@@ -193,7 +209,10 @@ def solve_admm_window(frames: Array, model: PSFModel, *, iterations: int, tv: fl
     n_frames = int(frames.shape[0])
     p = _Problem(model, frames, tv)
     be, xp = p.be, p.xp
-    steps = steps_for(be, compiled=compiled)
+    # The model's steps object keeps the volume-solve factors of its penalties (with TV):
+    # a warm chain's next frame starts from the same penalties and reuses them.
+    steps = model.solver_cache(("admm-steps", compiled),
+                               lambda: steps_for(be, compiled=compiled))
     shape, dt = p.shape, p.dtype
     nz, ny, nx = p.nz, p.ny, p.nx
     sensor = p.sensor

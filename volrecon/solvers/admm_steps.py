@@ -20,6 +20,7 @@ needed, see :func:`w_step`).
 
 from __future__ import annotations
 
+import threading
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -36,10 +37,12 @@ if TYPE_CHECKING:
 __all__ = ["FACTOR_CACHE_BYTES", "ArraySteps", "CompiledSteps", "steps_for"]
 
 #: Bytes of volume-solve factor sets (with TV) a compiled steps object keeps, most recent
-#: first; the most recent set is always kept. A set holds 1.5× the bytes of Ĥ (pivots in
-#: float32, T⁻¹a in complex64): 6 MB at 16×128², 1.6 GB at Z = 64 on a 1024² sensor. So
-#: small problems keep one set per frame of a temporal window (each its own
-#: μ₃ + weight·λ_k), and large ones only the current set (a warm chain rarely changes it).
+#: first; the most recent set is always kept. The steps object is the model's, so the sets
+#: outlive a solve: the next frame of a warm chain starts from the same penalties. A set
+#: holds 1.5× the bytes of Ĥ (pivots in float32, T⁻¹a in complex64): 6 MB at 16×128²,
+#: 1.6 GB at Z = 64 on a 1024² sensor. So small problems keep one set per frame of a
+#: temporal window (each its own μ₃ + weight·λ_k), and large ones only the current set (a
+#: warm chain rarely changes it).
 FACTOR_CACHE_BYTES = 256 << 20
 
 
@@ -164,10 +167,12 @@ class CompiledSteps(ArraySteps):
 
     def __init__(self, backend: Backend) -> None:
         super().__init__(backend)
-        # Volume-solve factors by (arrays, penalties): one solve's steps object owns them.
+        # Volume-solve factors by (arrays, penalties), kept across the solves of one model
+        # (the model owns this object, see admm.solve_admm_window) and shared by its threads.
         # key -> (arrays the key's ids stand for, kept alive so an id is never reused while
         # its entry lasts; the factors)
         self._cache: dict[tuple[Any, ...], tuple[tuple[Any, ...], tuple[Array, ...]]] = {}
+        self._lock = threading.Lock()
 
     def _split(self, kernel: Callable[..., None], n: int, *args: Any) -> None:
         # The backend's split: the calling thread runs the first range, pool threads the rest.
@@ -236,17 +241,20 @@ class CompiledSteps(ArraySteps):
                  make: Callable[[], tuple[Array, ...]]) -> tuple[Array, ...]:
         """The cached `make()` for `key` (whose ids name the arrays in `pins`); keeps the most
         recent sets within :data:`FACTOR_CACHE_BYTES`, and always the newest."""
-        entry = self._cache.pop(key, None)
+        with self._lock:
+            entry = self._cache.get(key)
         if entry is None or any(a is not b for a, b in zip(entry[0], pins, strict=True)):
-            entry = (pins, make())
-        self._cache[key] = entry  # most recent last
+            entry = (pins, make())  # outside the lock: other threads' solves go on
 
         def size(item: tuple[tuple[Any, ...], tuple[Array, ...]]) -> int:
             return sum(int(a.nbytes) for a in item[1])
 
-        while len(self._cache) > 1 and sum(map(size, self._cache.values())) > \
-                FACTOR_CACHE_BYTES:
-            del self._cache[next(iter(self._cache))]
+        with self._lock:
+            self._cache.pop(key, None)
+            self._cache[key] = entry  # most recent last
+            while len(self._cache) > 1 and sum(map(size, self._cache.values())) > \
+                    FACTOR_CACHE_BYTES:
+                del self._cache[next(iter(self._cache))]
         return entry[1]
 
     def window_dct(self, a: Array, out: Array, *, inverse: bool = False) -> Array:

@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import importlib.util
+import subprocess
+import sys
 
 import numpy as np
 import pytest
@@ -63,3 +65,37 @@ def test_gpu_matches_cpu(rng, method, tv):
     # Reference: the CPU path (float32 on both; FFT libraries differ in rounding only).
     gpu = cupy.asnumpy(gpu)
     assert np.linalg.norm(gpu - cpu) / np.linalg.norm(cpu) < 1e-3
+
+
+_FAULTS_SCRIPT = """
+import resource, sys
+import numpy as np
+from volrecon.backend import keep_freed_memory
+
+if sys.argv[1] == "keep":
+    assert keep_freed_memory()
+a = np.ones(24 << 20, np.float32)  # 96 MiB: above glibc's largest dynamic mmap threshold
+for _ in range(2):
+    b = a * 2
+    del b
+before = resource.getrusage(resource.RUSAGE_SELF).ru_minflt
+for _ in range(5):
+    b = a * 2
+    del b
+print(resource.getrusage(resource.RUSAGE_SELF).ru_minflt - before)
+"""
+
+
+@pytest.mark.skipif(sys.platform != "linux", reason="the setting is glibc's")
+def test_freed_arrays_are_reused_not_mapped_afresh():
+    """A freed 96 MiB array's memory serves the next one without new page faults once
+    :func:`keep_freed_memory` has raised glibc's mmap threshold (man 3 mallopt:
+    M_MMAP_THRESHOLD, M_TRIM_THRESHOLD); without it, each new array faults its pages in."""
+    def faults(mode: str) -> int:
+        done = subprocess.run([sys.executable, "-c", _FAULTS_SCRIPT, mode], check=True,
+                              capture_output=True, text=True)
+        return int(done.stdout.strip())
+
+    fresh, kept = faults("plain"), faults("keep")
+    assert fresh >= 5 * 40  # 5 arrays, each at least 40 pages (huge pages: 48 of 2 MiB)
+    assert kept * 4 < fresh, (kept, fresh)

@@ -262,10 +262,11 @@ def solve_admm_window(frames: Array, model: PSFModel, *, iterations: int, tv: fl
     rhs: Any = xp.empty_like(v) if p.use_tv else None
     # w of the iteration before a check, then of the check itself (one buffer: the w-step
     # returns ‖w − w_prev‖² before overwriting); ρ·y of the same two iterations, by parity.
-    # Only a check at the first iteration reads a "previous" w or y never written (as zero).
+    # Only a check at the first iteration reads a "previous" w or y never written (as zero;
+    # iteration 1 writes slot 1 and reads slot 0 as the previous y).
     fresh = xp.zeros_like if iterations == 1 or check_every == 1 else xp.empty_like
     w = fresh(v)
-    y_saved: list[Any] = [fresh(ymb), fresh(ymb)] if p.use_tv else [None, None]
+    y_saved: list[Any] = [fresh(ymb), xp.empty_like(ymb)] if p.use_tv else [None, None]
     x_denominator = xp.full(shape, 1.0 / mu[0], dtype=dt)
     x_denominator[sensor[1:]] = 1.0 / (1.0 + mu[0])
     x = xp.zeros_like(alpha)  # read as the previous x by a check at iteration 1

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 
+from volrecon.bench import overhead
 from volrecon.bench.iteration import CASES
 from volrecon.cli import main
 
@@ -18,7 +19,7 @@ def test_bench_json_reports_every_case(capsys):
         assert r["seconds_per_iteration"] > 0 and r["fft_bound_seconds"] > 0
         assert r["ratio_to_bound"] > 0
     # the warm-solve records: fixed cost and per-iteration cost from a straight-line fit
-    assert [r["method"] for r in report["overhead"]] == ["admm", "fista", "rl"]
+    assert [(r["method"], r["tv"]) for r in report["overhead"]] == list(overhead.CASES)
     for r in report["overhead"]:
         assert len(r["solve_in_bounds"]) == len(r["iterations"])
         assert r["per_iteration_in_bounds"] > 0
@@ -29,7 +30,8 @@ def test_bench_table(capsys):
     lines = capsys.readouterr().out.splitlines()
     assert lines[0].startswith("Per iteration against the FFT lower bound")
     # the per-iteration table (title, header, one line per case), then the warm-solve table
-    # (title, one line per method)
-    assert len(lines) == 2 + len(CASES) + 1 + 3
+    # (title, one line per case)
+    warm = len(overhead.CASES)
+    assert len(lines) == 2 + len(CASES) + 1 + warm
     assert lines[2 + len(CASES)].startswith("Warm solve of k iterations")
-    assert all("fixed cost" in line for line in lines[-3:])
+    assert all("fixed cost" in line for line in lines[-warm:])

@@ -17,7 +17,7 @@ import numpy as np
 from volrecon.bench.iteration import fft_lower_bound, problem
 from volrecon.solvers import SolverSettings, solve_frame
 
-__all__ = ["ITERATION_COUNTS", "run", "warm_solve_seconds"]
+__all__ = ["CASES", "ITERATION_COUNTS", "run", "warm_solve_seconds"]
 
 #: Iterations per timed warm solve.
 ITERATION_COUNTS = (1, 3, 5, 9)

@@ -99,3 +99,28 @@ def test_freed_arrays_are_reused_not_mapped_afresh():
     fresh, kept = faults("plain"), faults("keep")
     assert fresh >= 5 * 40  # 5 arrays, each at least 40 pages (huge pages: 48 of 2 MiB)
     assert kept * 4 < fresh, (kept, fresh)
+
+
+_THRESHOLD_SCRIPT = """
+import sys
+import numpy as np
+import volrecon
+from volrecon import backend
+
+planes = int(sys.argv[1])
+psf = np.random.default_rng(0).random((planes, 128, 128), dtype=np.float32)
+model = volrecon.PSFModel.from_stack(psf / psf.sum(), depth_step_um=1.0, pixel_size_um=1.0)
+volrecon.reconstruct(np.ones((128, 128), np.float32), model, method="fista", iterations=1)
+print(bool(backend._KEPT))
+"""
+
+
+@pytest.mark.skipif(sys.platform != "linux", reason="the setting is glibc's")
+@pytest.mark.parametrize("planes, kept", [(4, False), (160, True)])
+def test_only_solves_of_large_volumes_change_the_allocator(planes, kept):
+    """4 planes on the 256² padded grid (1 MiB) are below glibc's largest dynamic mmap
+    threshold and reused anyway, so their solve leaves the allocator alone; 160 planes
+    (40 MiB) set it."""
+    done = subprocess.run([sys.executable, "-c", _THRESHOLD_SCRIPT, str(planes)], check=True,
+                          capture_output=True, text=True)
+    assert done.stdout.strip() == str(kept)

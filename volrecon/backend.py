@@ -21,8 +21,8 @@ from volrecon.errors import BackendError, ConfigError
 if TYPE_CHECKING:
     from collections.abc import Callable
 
-__all__ = ["MAPPED_ARRAY_BYTES", "Backend", "available_cores", "get_backend",
-           "keep_freed_memory", "physical_memory_bytes", "split_threads"]
+__all__ = ["Backend", "available_cores", "get_backend", "keep_freed_memory",
+           "physical_memory_bytes", "split_threads"]
 
 DEVICES = ("cpu", "gpu")
 
@@ -38,11 +38,6 @@ def available_cores() -> int:
 #: Arrays below this many bytes come from the C heap and are reused once freed (see
 #: :func:`keep_freed_memory`); larger ones are mapped and unmapped as before.
 HEAP_ARRAY_LIMIT = 1 << 30
-#: glibc's largest dynamic mmap threshold (64-bit): arrays above it are always mapped afresh
-#: unless :func:`keep_freed_memory` ran; smaller ones are reused already. The solvers call it
-#: only for volumes above this size, so small jobs keep glibc's defaults (and dask's
-#: trimming of worker memory).
-MAPPED_ARRAY_BYTES = 32 << 20
 _KEPT: list[bool] = []
 
 
@@ -50,15 +45,18 @@ def keep_freed_memory() -> bool:
     """Let this process reuse freed array memory instead of returning it to the OS; once.
 
     glibc maps every allocation above its dynamic threshold (at most 32 MiB) afresh and
-    unmaps it when freed, so each new volume-sized array of a large solve (a transform's
-    output, every iteration) costs the kernel's zero-filling of all its pages again: at
-    32×512² (128 MiB volumes) that was about 40 % of an ADMM iteration. With the mmap
-    threshold at :data:`HEAP_ARRAY_LIMIT` and no trimming of the heap's top, freed arrays
-    are reused as they are. The cost: the process keeps its peak heap instead of shrinking
-    after it (dask.distributed's nannies ask glibc to trim worker memory early instead; this
-    overrides that for the process). Called by the solvers for volumes above
-    :data:`MAPPED_ARRAY_BYTES`; returns whether the setting took (glibc on Linux only,
-    elsewhere nothing changes).
+    unmaps it when freed, and returns free memory at the top of its heap to the OS once it
+    exceeds twice that threshold. Either way the next volume-sized array of a solve (a
+    transform's output, every iteration) costs the kernel's zero-filling of its pages again:
+    at 32×512² (128 MiB volumes) about 40 % of an ADMM iteration, and at 16×128² about 12 MB
+    of fresh pages per warm ADMM + TV solve once the model keeps its factors (their arrays
+    sit below the per-solve ones and leave the freed top to be trimmed). With the mmap
+    threshold at :data:`HEAP_ARRAY_LIMIT` and no trimming, freed arrays are reused as they
+    are. The cost: the process keeps its peak heap instead of shrinking after it
+    (dask.distributed's nannies ask glibc to trim worker memory early; this overrides that
+    for the process, whose solves reach the same peak frame after frame). Called by every
+    CPU solve; returns whether the setting took (glibc on Linux only, elsewhere nothing
+    changes).
     """
     if _KEPT:
         return _KEPT[0]

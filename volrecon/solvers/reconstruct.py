@@ -8,7 +8,7 @@ from typing import TYPE_CHECKING, Any, Literal, overload
 
 import numpy as np
 
-from volrecon.backend import MAPPED_ARRAY_BYTES, keep_freed_memory
+from volrecon.backend import keep_freed_memory
 from volrecon.errors import ConfigError, DataError, ShapeError
 from volrecon.solvers.admm import solve_admm, solve_admm_window
 from volrecon.solvers.fista import solve_fista
@@ -286,9 +286,7 @@ def _checked(model: PSFModel, method: str, iterations: int | str, *, tv: float, 
             f"method 'admm' needs a shift-invariant model; {type(model).__name__} is not one — "
             "use method='fista' or 'rl'"
         )
-    py, px = model.padded_shape
-    if model.backend.device == "cpu" and \
-            model.n_planes * py * px * model.dtype.itemsize > MAPPED_ARRAY_BYTES:
+    if model.backend.device == "cpu":
         keep_freed_memory()  # every iteration's volume-sized arrays: reused, not re-zeroed
     return model, int(iterations), stop_change
 

@@ -203,6 +203,29 @@ def test_warm_start_reuses_state(small_problem):
     assert warm.iterations < cold.iterations / 2
 
 
+def test_warm_start_keeps_the_tv_dual_when_the_depth_weight_changes(small_problem):
+    """The state carries ymb = ∇v − β for the depth weight it was solved with; a warm start
+    with another weight must start from the same scaled dual β (Boyd et al. 2011 §3.1.1),
+    i.e. from ymb' = ∇'v − β, here built with the reference gradient of solvers.tv."""
+    from volrecon.solvers.tv import gradient
+
+    _, model, frame = small_problem
+    _, first = volrecon.reconstruct(frame, model, iterations=30, tol=0.0, tv=1e-3,
+                                    tv_z_weight=1.0, return_info=True)
+    arrays = first.state.arrays
+    v, ymb = arrays["v"], arrays["ymb"]
+    beta = gradient(v, 1.0) - ymb
+    by_hand = dict(arrays, ymb=(gradient(v, 0.5) - beta).astype(np.float32),
+                   tv_z_weight=np.float64(0.5))
+    settings = {"iterations": 4, "tol": 0.0, "tv": 1e-3, "tv_z_weight": 0.5}
+    changed = volrecon.reconstruct(frame, model, init=first.state, **settings)
+    reference = volrecon.reconstruct(
+        frame, model, init=SolverState("admm", by_hand, first.state.penalties), **settings)
+    np.testing.assert_allclose(changed, reference, rtol=1e-4, atol=1e-6 * float(changed.max()))
+    # and the state itself is left as it was (the solve works on its own copies)
+    np.testing.assert_array_equal(first.state.arrays["ymb"], ymb)
+
+
 def test_info_diagnostics(small_problem):
     psf, model, frame = small_problem
     volume, info = volrecon.reconstruct(frame, model, method="fista", iterations=50, l1=1e-3,

@@ -228,16 +228,22 @@ def solve_admm_window(frames: Array, model: PSFModel, *, iterations: int, tv: fl
     mean_gain = float(p.sum_abs2.mean())
     scale = mean_gain if mean_gain > 0 else 1.0
     mu = [INITIAL_MU1, INITIAL_MU2 * scale if p.use_tv else 0.0, INITIAL_MU3 * scale]
-    # Implicit scaled duals: wmg = v − γ and ymb = ∇v − β (see admm_steps).
-    gamma: Any = None
-    beta: Any = None
+    # Implicit scaled duals: wmg = v − γ and ymb = ∇v − β (see admm_steps), carried in the
+    # state as they are: a warm start needs no pass to turn them into γ and β and back.
+    wmg: Any = None
+    ymb: Any = None
     mv: Any = None
     if isinstance(init, SolverState):
         v = window(init.arrays["v"])
         alpha = window(init.arrays["alpha"])
-        gamma = window(init.arrays["gamma"])
-        beta = init.arrays.get("beta") if p.use_tv else None
-        beta = None if beta is None else window(beta)
+        wmg = window(init.arrays["wmg"])
+        if p.use_tv and "ymb" in init.arrays:
+            ymb = window(init.arrays["ymb"])
+            made_with = float(init.arrays["tv_z_weight"][-1])
+            if made_with != tv_z_weight:  # keep β = ∇v − ymb, with ∇'s depth weight changed
+                for t in range(n_frames):
+                    steps.gradient_minus(v[t], ymb[t], made_with)  # ymb → β
+                    steps.gradient_minus(v[t], ymb[t], tv_z_weight)  # β → ymb
         if "mv" in init.arrays:  # M v of the start, the last of the solve before
             mv = window(init.arrays["mv"])
         mu = list(init.penalties)
@@ -250,13 +256,12 @@ def solve_admm_window(frames: Array, model: PSFModel, *, iterations: int, tv: fl
         alpha = xp.zeros((n_frames, *shape), dtype=dt)
         if init is not None:
             v[:, :, :ny, :nx] = init
-    wmg = v.copy() if gamma is None else v - gamma
-    ymb: Any = None
-    if p.use_tv:
-        ymb = xp.zeros((n_frames, 3, *v.shape[1:]), dtype=dt) if beta is None else beta
+    if wmg is None:  # γ = 0
+        wmg = v.copy()
+    if p.use_tv and ymb is None:  # β = 0
+        ymb = xp.zeros((n_frames, 3, *v.shape[1:]), dtype=dt)
         for t in range(n_frames):
             steps.gradient_minus(v[t], ymb[t], tv_z_weight)
-    del gamma, beta
     if mv is None:
         mv = _forward_padded(p, v) if init is not None else xp.zeros_like(alpha)
     rhs: Any = xp.empty_like(v) if p.use_tv else None
@@ -406,12 +411,10 @@ def solve_admm_window(frames: Array, model: PSFModel, *, iterations: int, tv: fl
             x_denominator[...] = 1.0 / mu[0]
             x_denominator[sensor[1:]] = 1.0 / (1.0 + mu[0])
 
-    xp.subtract(v, wmg, out=wmg)  # wmg is not needed any more: it becomes γ
-    arrays = {"v": v, "alpha": alpha, "gamma": wmg, "mv": mv}
-    if p.use_tv:
-        for t in range(n_frames):  # ymb is not needed any more: it becomes β
-            steps.gradient_minus(v[t], ymb[t], tv_z_weight)
-        arrays["beta"] = ymb
+    arrays = {"v": v, "alpha": alpha, "wmg": wmg, "mv": mv}
+    if p.use_tv:  # ymb = ∇v − β depends on ∇'s depth weight: the next solve may change it
+        arrays["ymb"] = ymb
+        arrays["tv_z_weight"] = xp.full(n_frames, tv_z_weight, dtype=np.float64)
     state = SolverState("admm", arrays, tuple(mu))
     # The returned volumes are the feasible split w (≥ 0, zero off the field).
     volumes = xp.ascontiguousarray(w[:, :, :ny, :nx])

@@ -29,7 +29,7 @@ def tiny(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, dict[str, Any]
     folder = tmp_path_factory.mktemp("pipeline-bench")
     report = pipeline.run(n_frames=N_FRAMES, size_zyx=(4, 32, 32), schedulers=("synchronous",),
                           workers=1, reference_frames=3, iterations=5,
-                          chain_frames=CHAIN_FRAMES, directory=folder)
+                          chain_frames=CHAIN_FRAMES, tv=1e-3, directory=folder)
     return folder, report
 
 
@@ -60,6 +60,14 @@ def test_report_structure_and_finite_figures(tiny: tuple[Path, dict[str, Any]]) 
         assert -1.0 <= quality[key] <= 1.0, key
     assert math.isfinite(quality["ratio_to_reference"]) and quality["ratio_to_reference"] > 0
     json.dumps(report, allow_nan=False)  # valid JSON for --json
+
+
+def test_jobs_use_the_tv_weight_asked_for(tiny: tuple[Path, dict[str, Any]]) -> None:
+    folder, report = tiny
+    assert report["tv"] == 1e-3
+    jobs = sorted(folder.glob("*.toml"))
+    assert jobs and all(tomllib.loads(j.read_text())["solver"]["tv"] == 1e-3 for j in jobs)
+    assert "tv 0.001;" in pipeline.report_lines(report)[0]
 
 
 def test_report_lines(tiny: tuple[Path, dict[str, Any]]) -> None:
@@ -120,12 +128,12 @@ def test_cli_branch(tiny: tuple[Path, dict[str, Any]], monkeypatch: pytest.Monke
 
     monkeypatch.setattr(pipeline, "run", fake_run)
     argv = ["--pipeline", "--frames", "12", "--size", "4", "32", "32"]
-    assert bench.main([*argv, "--scheduler", "threads", "--json"]) == 0
+    assert bench.main([*argv, "--scheduler", "threads", "--tv", "0.002", "--json"]) == 0
     assert json.loads(capsys.readouterr().out) == {"pipeline": report}
     assert calls[-1] == {"n_frames": 12, "size_zyx": (4, 32, 32), "threads": None,
-                         "schedulers": ["threads"]}
+                         "schedulers": ["threads"], "tv": 0.002}
     assert bench.main(argv) == 0
     assert capsys.readouterr().out.splitlines() == pipeline.report_lines(report)
-    assert calls[-1]["schedulers"] == ("threads", "processes")
+    assert calls[-1]["schedulers"] == ("threads", "processes") and calls[-1]["tv"] == 0.0
     with pytest.raises(ConfigError, match="runs on the CPU"):
         bench.main([*argv, "--device", "gpu"])

@@ -47,6 +47,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--frames", type=int, default=None, metavar="N",
                         help="--pipeline: frames of the simulated video (default 240); "
                              "--store: frames of the store (default 1000)")
+    parser.add_argument("--tv", type=float, default=0.0, metavar="W",
+                        help="--pipeline: [solver] tv of the job (default 0; the demo's 1e-3)")
     parser.add_argument("--scheduler", choices=("threads", "processes"), action="append",
                         help="--pipeline: dask scheduler (repeatable); default both")
     parser.add_argument("--temporal", action="store_true",
@@ -176,7 +178,8 @@ def _run_pipeline(args: argparse.Namespace, size_zyx: tuple[int, int, int]) -> i
     if args.device != "cpu":
         raise ConfigError("--pipeline runs on the CPU; leave out --device")
     report = pipeline.run(n_frames=args.frames or 240, size_zyx=size_zyx, threads=args.threads,
-                          schedulers=args.scheduler or ("threads", "processes"))
+                          schedulers=args.scheduler or ("threads", "processes"),
+                          tv=args.tv)
     return _show(args, "pipeline", report, lambda: pipeline.report_lines(report))
 
 

@@ -4,8 +4,8 @@ Reproduce: ``volrecon bench --pipeline`` (options ``--frames N``, ``--size Z Y X
 ``--scheduler threads|processes``, ``--json``).
 
 A hydrogel video is simulated and its bead scan calibrated (:mod:`volrecon.simulate`,
-:func:`volrecon.calibrate.calibrate_file`); a job file (ADMM, ``iterations = "auto"``, tv 0,
-warm starts, the job defaults for chains and lead-ins) then runs through
+:func:`volrecon.calibrate.calibrate_file`); a job file (ADMM, ``iterations = "auto"``, tv 0
+or ``--tv``, warm starts, the job defaults for chains and lead-ins) then runs through
 :func:`volrecon.pipeline.run_job` with `workers` workers, for each scheduler twice: on the first
 ``n_short`` frames and on all ``n_frames``, into separate stores. The marginal wall time per
 frame, ``(t_all − t_short) / (n_frames − n_short)``, leaves out what both runs pay once
@@ -90,10 +90,10 @@ def _simulate(folder: Path, *, n_frames: int, size_zyx: tuple[int, int, int]) ->
 
 def _write_job(folder: Path, scenario: Any, *, name: str, frames: int, scheduler: str,
                workers: int, threads: int | None, iterations: int | str,
-               chain_frames: int | None) -> Path:
+               chain_frames: int | None, tv: float = 0.0) -> Path:
     import tomli_w
 
-    solver: dict[str, Any] = {"method": "admm", "iterations": iterations, "tv": 0.0,
+    solver: dict[str, Any] = {"method": "admm", "iterations": iterations, "tv": tv,
                               "warm_start": True}
     if chain_frames is not None:
         solver["chain_frames"] = chain_frames
@@ -195,7 +195,7 @@ def _stores_identical(paths: Sequence[Path]) -> bool:
 
 def _measure(folder: Path, scenario: Any, *, n_frames: int, schedulers: Sequence[str],
              workers: int, threads: int | None, reference_frames: int,
-             iterations: int | str, chain_frames: int | None) -> dict[str, Any]:
+             iterations: int | str, chain_frames: int | None, tv: float) -> dict[str, Any]:
     from volrecon.bench.iteration import fft_lower_bound
     from volrecon.models import PSFModel
     from volrecon.pipeline import JobStore, fft_threads_per_task, load_job
@@ -204,7 +204,7 @@ def _measure(folder: Path, scenario: Any, *, n_frames: int, schedulers: Sequence
     def job(name: str, frames: int, scheduler: str) -> Path:
         return _write_job(folder, scenario, name=name, frames=frames, scheduler=scheduler,
                           workers=workers, threads=threads, iterations=iterations,
-                          chain_frames=chain_frames)
+                          chain_frames=chain_frames, tv=tv)
 
     warm_up = job("warm-up", min(n_frames, workers), schedulers[0])
     config = load_job(warm_up)
@@ -256,7 +256,7 @@ def _measure(folder: Path, scenario: Any, *, n_frames: int, schedulers: Sequence
 def run(*, n_frames: int = 240, size_zyx: tuple[int, int, int] = (16, 128, 128),
         schedulers: Sequence[str] = ("threads", "processes"), workers: int = 2,
         threads: int | None = None, reference_frames: int = 40,
-        iterations: int | str = "auto", chain_frames: int | None = None,
+        iterations: int | str = "auto", chain_frames: int | None = None, tv: float = 0.0,
         directory: str | os.PathLike[str] | None = None) -> dict[str, Any]:
     """Simulate, calibrate and run the job per scheduler; return the figures (see module doc).
 
@@ -278,6 +278,9 @@ def run(*, n_frames: int = 240, size_zyx: tuple[int, int, int] = (16, 128, 128),
         ``[solver] iterations`` of the job.
     chain_frames : int, optional
         ``[solver] chain_frames``; default the job's.
+    tv : float
+        ``[solver] tv`` of the job and of the quality reference (0: no TV; the demo's job
+        files use 1e-3).
     directory : path-like, optional
         Where the simulation, the job files and the stores go (kept); default a temporary
         folder, deleted afterwards.
@@ -315,7 +318,8 @@ def run(*, n_frames: int = 240, size_zyx: tuple[int, int, int] = (16, 128, 128),
         report = {"size_zyx": list(size_zyx), **_measure(
             folder, scenario, n_frames=n_frames, schedulers=schedulers, workers=workers,
             threads=threads, reference_frames=reference_frames, iterations=iterations,
-            chain_frames=chain_frames)}
+            chain_frames=chain_frames, tv=tv)}
+    report["tv"] = tv
     report["scaled"] = None
     if tuple(size_zyx) == SCALED_FROM_ZYX:
         _, big = problem(*SCALED_SIZE_ZYX, "cpu", report["fft_threads"])
@@ -341,7 +345,8 @@ def report_lines(report: dict[str, Any]) -> list[str]:
                   if report["iterations"] == "auto" else f"{report['iterations']} iterations")
     lines = [
         f"Pipeline: {n} simulated frames of {z}x{y}x{x} (padded {py}x{px}); admm, {iterations}, "
-        f"tv 0; chains of {report['chain_frames']} frames after {report['lead_in_frames']} "
+        f"tv {report.get('tv', 0.0):g}; chains of {report['chain_frames']} frames after "
+        f"{report['lead_in_frames']} "
         f"lead-in frames; {_count(report['workers'], 'worker')} x "
         f"{_count(threads, 'FFT thread')}",
         f"wall s/frame = (t({n}) - t({n_short})) / {n - n_short}, measured; solve s/frame = "
